@@ -1,0 +1,211 @@
+"""Strict loading of TOML sections into typed, frozen dataclasses.
+
+Every module that reads a profile section declares its options as a dataclass whose
+fields are made with :func:`option`. :func:`load_section` checks a TOML table against
+it: unknown options (with the nearest valid name suggested), wrong types, values out of
+range or not among the allowed choices, and missing required options each raise a
+:class:`ConfigError` naming the file, the section and the option and saying what is
+allowed. Nested dataclass fields are sub-sections (``[sim.culture]``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import types
+import typing
+from pathlib import Path
+from typing import Any, TypeVar
+
+T = TypeVar("T")
+
+_REQUIRED = object()
+
+
+class ConfigError(ValueError):
+    """A profile or plan is malformed. ``str()`` is one line naming file, section, option."""
+
+    def __init__(self, file: str | Path, section: str, option: str | None, problem: str) -> None:
+        self.file = str(file)
+        self.section = section
+        self.option = option
+        self.problem = problem
+        where = f"[{section}]" if section else "(top level)"
+        if option:
+            where += f" {option}"
+        super().__init__(f"{self.file}: {where}: {problem}")
+
+
+def option(
+    default: Any = _REQUIRED,
+    *,
+    doc: str,
+    min: float | None = None,
+    max: float | None = None,
+    choices: typing.Sequence[Any] | None = None,
+    unit: str = "",
+) -> Any:
+    """Declare one profile option: its default (omit for required), documentation and limits."""
+    meta = {"doc": doc, "min": min, "max": max, "choices": tuple(choices) if choices else None, "unit": unit}
+    if default is _REQUIRED:
+        return dataclasses.field(metadata=meta)
+    if isinstance(default, (list, dict)):
+        return dataclasses.field(default_factory=lambda d=default: type(d)(d), metadata=meta)
+    return dataclasses.field(default=default, metadata=meta)
+
+
+def section(cls: type[T], *, doc: str = "") -> Any:
+    """Declare an optional sub-section whose options all have defaults."""
+    return dataclasses.field(default_factory=cls, metadata={"doc": doc, "section": True})
+
+
+def _type_name(tp: Any) -> str:
+    origin = typing.get_origin(tp)
+    if origin in (list, tuple):
+        (inner, *_) = typing.get_args(tp) or (Any,)
+        return f"a list of {_type_name(inner)}s"
+    if origin in (typing.Union, types.UnionType):
+        names = [_type_name(a) for a in typing.get_args(tp) if a is not type(None)]
+        return " or ".join(names)
+    return {float: "number", int: "whole number", str: "string", bool: "true/false"}.get(tp, str(tp))
+
+
+def _describe_allowed(f: dataclasses.Field[Any], tp: Any) -> str:
+    meta = f.metadata
+    unit = f" {meta['unit']}" if meta.get("unit") else ""
+    if meta.get("choices"):
+        return "one of " + ", ".join(repr(c) for c in meta["choices"])
+    lo, hi = meta.get("min"), meta.get("max")
+    kind = _type_name(tp)
+    if lo is not None and hi is not None:
+        return f"a {kind} from {lo} to {hi}{unit}"
+    if lo is not None:
+        return f"a {kind} of at least {lo}{unit}"
+    if hi is not None:
+        return f"a {kind} of at most {hi}{unit}"
+    return f"a {kind}{unit}"
+
+
+def _coerce(value: Any, tp: Any) -> Any:
+    """Return ``value`` as type ``tp`` or raise TypeError. Ints are accepted for floats."""
+    origin = typing.get_origin(tp)
+    if origin in (typing.Union, types.UnionType):
+        for arg in typing.get_args(tp):
+            if arg is type(None):
+                continue
+            try:
+                return _coerce(value, arg)
+            except TypeError:
+                pass
+        raise TypeError
+    if origin is list:
+        (inner,) = typing.get_args(tp)
+        if not isinstance(value, list):
+            raise TypeError
+        return [_coerce(v, inner) for v in value]
+    if origin is tuple:
+        (inner, *_) = typing.get_args(tp)
+        if not isinstance(value, list):
+            raise TypeError
+        return tuple(_coerce(v, inner) for v in value)
+    if tp is bool:
+        if not isinstance(value, bool):
+            raise TypeError
+        return value
+    if tp is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise TypeError
+        return value
+    if tp is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise TypeError
+        return float(value)
+    if tp is str:
+        if not isinstance(value, str):
+            raise TypeError
+        return value
+    if tp is Any:
+        return value
+    raise TypeError
+
+
+def _check_limits(value: Any, f: dataclasses.Field[Any]) -> bool:
+    meta = f.metadata
+    values = value if isinstance(value, (list, tuple)) else [value]
+    for v in values:
+        if meta.get("choices") and v not in meta["choices"]:
+            return False
+        if isinstance(v, (int, float)) and not isinstance(v, bool):
+            if meta.get("min") is not None and v < meta["min"]:
+                return False
+            if meta.get("max") is not None and v > meta["max"]:
+                return False
+    return True
+
+
+def suggest(name: str, valid: typing.Iterable[str]) -> str:
+    """' (did you mean 'x'?)' for the nearest valid name, or ''."""
+    close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.6)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def load_section(cls: type[T], table: Any, *, file: str | Path, section: str) -> T:
+    """Build ``cls`` from a TOML table, strictly. See the module docstring."""
+    if not isinstance(table, dict):
+        raise ConfigError(file, section, None, f"must be a table ([{section}]), got {type(table).__name__}")
+    hints = typing.get_type_hints(cls)
+    fields = {f.name: f for f in dataclasses.fields(cls)}  # type: ignore[arg-type]
+    for key in table:
+        if key not in fields:
+            kind = "sub-section" if isinstance(table[key], dict) else "option"
+            allowed = ", ".join(sorted(fields))
+            raise ConfigError(
+                file, section, key, f"unknown {kind}{suggest(key, fields)}; allowed here: {allowed}"
+            )
+    kwargs: dict[str, Any] = {}
+    for name, f in fields.items():
+        tp = hints[name]
+        sub = f"{section}.{name}" if section else name
+        if dataclasses.is_dataclass(tp):
+            kwargs[name] = load_section(tp, table.get(name, {}), file=file, section=sub)  # type: ignore[arg-type]
+            continue
+        if name not in table:
+            required = f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
+            if required:
+                raise ConfigError(
+                    file, section, name,
+                    f"missing required option; set it to {_describe_allowed(f, tp)} ({f.metadata['doc']})",
+                )
+            continue
+        raw = table[name]
+        try:
+            value = _coerce(raw, tp)
+        except TypeError:
+            raise ConfigError(
+                file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}"
+            ) from None
+        if not _check_limits(value, f):
+            raise ConfigError(file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}")
+        kwargs[name] = value
+    try:
+        obj = cls(**kwargs)
+    except ConfigError:
+        raise
+    except ValueError as exc:
+        # __post_init__ cross-checks raise ValueError("option: problem").
+        opt, _, problem = str(exc).partition(": ")
+        raise ConfigError(file, section, opt if problem else None, problem or str(exc)) from None
+    return obj
+
+
+def describe(cls: type[Any], section: str = "") -> list[str]:
+    """Human-readable list of the options of ``cls`` (used by ``phasewatch check --options``)."""
+    lines: list[str] = []
+    hints = typing.get_type_hints(cls)
+    for f in dataclasses.fields(cls):
+        tp = hints[f.name]
+        if dataclasses.is_dataclass(tp):
+            lines += describe(tp, f"{section}.{f.name}" if section else f.name)  # type: ignore[arg-type]
+            continue
+        lines.append(f"[{section}] {f.name}: {_describe_allowed(f, tp)} - {f.metadata.get('doc', '')}")
+    return lines

@@ -1,0 +1,1 @@
+"""Hardware behind small async interfaces: cameras, motion controllers, the simulated scope."""

@@ -1,0 +1,103 @@
+"""The ``[sim]`` profile section: settings of the simulated scope (world, culture, sensor)."""
+
+from __future__ import annotations
+
+import dataclasses
+
+from daemon.config import option, section
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimPlate:
+    """Where the simulated vessel's wells lie on the stage (stage coordinates, um)."""
+
+    rows: int = option(8, doc="well rows", min=1, max=32)
+    columns: int = option(12, doc="well columns", min=1, max=48)
+    a1_x_um: float = option(14380.0, doc="stage x of the centre of well A1", unit="um")
+    a1_y_um: float = option(11240.0, doc="stage y of the centre of well A1", unit="um")
+    pitch_um: float = option(9000.0, doc="well-to-well spacing", min=100.0, max=100000.0, unit="um")
+    well_diameter_um: float = option(6400.0, doc="inner diameter of a well bottom", min=100.0, max=100000.0, unit="um")
+    empty_wells: list[str] = option([], doc="wells seeded with no cells (controls, blank fields), e.g. ['H12']")
+    density_spread: float = option(
+        0.3, doc="well-to-well relative spread of seeding density", min=0.0, max=2.0
+    )
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimCulture:
+    cell_line: str = option("KVL-7 fibroblast-like", doc="name of the (invented) cell line shown in reports")
+    seeding_per_mm2: float = option(60.0, doc="cells per mm^2 at t = 0", min=0.0, max=5000.0, unit="1/mm^2")
+    doubling_time_h: float = option(22.0, doc="doubling time in the exponential phase", min=1.0, max=1000.0, unit="h")
+    max_confluence: float = option(0.95, doc="confluence the logistic growth levels off at", min=0.05, max=1.0)
+    cell_diameter_um: float = option(30.0, doc="mean diameter of a spread cell", min=2.0, max=300.0, unit="um")
+    cell_elongation: float = option(1.8, doc="mean length-to-width ratio of a cell", min=1.0, max=6.0)
+    nucleus_diameter_um: float = option(11.0, doc="mean nucleus diameter", min=1.0, max=100.0, unit="um")
+    cell_thickness_um: float = option(3.0, doc="thickness of the cytoplasm", min=0.1, max=30.0, unit="um")
+    nucleus_thickness_um: float = option(5.0, doc="thickness over the nucleus", min=0.1, max=40.0, unit="um")
+    cell_index: float = option(1.365, doc="refractive index of cytoplasm", min=1.3, max=1.6)
+    nucleus_index: float = option(1.375, doc="refractive index of the nucleus", min=1.3, max=1.6)
+    medium_index: float = option(1.335, doc="refractive index of the culture medium", min=1.3, max=1.6)
+    motility_um_per_h: float = option(8.0, doc="typical cell speed", min=0.0, max=500.0, unit="um/h")
+    absorption: float = option(0.01, doc="fraction of light absorbed across a cell (phase objects absorb little)", min=0.0, max=0.5)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimFocalPlane:
+    """True focal plane z(x, y, t) = z0 + tilt + sag + thermal drift (ground truth for tests)."""
+
+    z0_um: float = option(1500.0, doc="in-focus z at the plate centre, before drift", unit="um")
+    tilt_x_um_per_mm: float = option(0.8, doc="plate tilt along x", min=-50.0, max=50.0, unit="um/mm")
+    tilt_y_um_per_mm: float = option(-0.5, doc="plate tilt along y", min=-50.0, max=50.0, unit="um/mm")
+    sag_um: float = option(12.0, doc="bottom sag at the centre relative to the edges (paraboloid)", min=-500.0, max=500.0, unit="um")
+    drift_um: float = option(25.0, doc="thermal focus drift after each door opening", min=-500.0, max=500.0, unit="um")
+    drift_tau_min: float = option(40.0, doc="time constant of the drift's exponential settling", min=0.1, max=10000.0, unit="min")
+    door_openings_h: list[float] = option([2.0, 26.0], doc="hours after the clock's start when the incubator door opens")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimSensor:
+    """EMVA 1288 linear camera model constants (the truth characterisation must recover)."""
+
+    quantum_efficiency: float = option(0.6, doc="photons to electrons", min=0.01, max=1.0)
+    photons_per_px_ms: float = option(180.0, doc="photons per pixel per ms at the field centre, lamp at full level", min=0.0, max=1e7)
+    system_gain_dn_per_e: float = option(0.08, doc="overall system gain K at 0 dB", min=1e-4, max=100.0, unit="DN/e-")
+    read_noise_e: float = option(6.0, doc="temporal dark noise", min=0.0, max=1000.0, unit="e-")
+    dark_current_e_per_s: float = option(40.0, doc="dark current", min=0.0, max=1e6, unit="e-/s")
+    dark_offset_dn: float = option(8.0, doc="black level added before quantisation", min=0.0, max=4096.0, unit="DN")
+    dsnu_e: float = option(2.0, doc="dark signal non-uniformity (std over pixels)", min=0.0, max=1000.0, unit="e-")
+    prnu_fraction: float = option(0.01, doc="photo-response non-uniformity (std over pixels, relative)", min=0.0, max=0.5)
+    full_well_e: float = option(12000.0, doc="saturation capacity", min=100.0, max=1e7, unit="e-")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimIllumination:
+    vignetting: float = option(0.35, doc="relative light lost at the frame corner from vignetting", min=0.0, max=0.95)
+    led_offset_x: float = option(0.12, doc="LED centre offset along x, fraction of the frame width", min=-1.0, max=1.0)
+    led_offset_y: float = option(-0.08, doc="LED centre offset along y, fraction of the frame height", min=-1.0, max=1.0)
+    led_spread: float = option(0.9, doc="width of the LED's light spot, fraction of the frame diagonal", min=0.05, max=10.0)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimMotion:
+    z_backlash_um: float = option(6.0, doc="true backlash of the simulated focus drive", min=0.0, max=500.0, unit="um")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimOptics:
+    ring_width_fraction: float = option(
+        0.08, doc="radius of the phase ring's footprint in the pupil, fraction of NA/λ (sets halo width)", min=0.001, max=0.5
+    )
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimConfig:
+    seed: int = option(20261201, doc="seed: the same seed gives the same culture and noise")
+    clock_speed: float = option(1.0, doc="simulated seconds per real second", min=0.001, max=1e7)
+    start_time: str = option("2026-03-02T09:00:00+00:00", doc="simulated time at the clock's first start (ISO 8601)")
+    plate: SimPlate = section(SimPlate)
+    culture: SimCulture = section(SimCulture)
+    focal_plane: SimFocalPlane = section(SimFocalPlane)
+    sensor: SimSensor = section(SimSensor)
+    illumination: SimIllumination = section(SimIllumination)
+    motion: SimMotion = section(SimMotion)
+    optics: SimOptics = section(SimOptics)
