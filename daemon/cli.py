@@ -1,0 +1,61 @@
+"""``phasewatch`` command line. Each sub-command lives in its own module in daemon/commands/.
+
+A command module defines ``register(sub)``, adding its parser with
+``set_defaults(func=...)``; the function takes the parsed arguments and returns an exit
+code (it may be a coroutine function). Errors a user can cause are printed as one line.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import importlib
+import inspect
+import pkgutil
+import sys
+from collections.abc import Sequence
+
+import daemon.commands
+from daemon import __version__
+from daemon.config import ConfigError
+from drivers.base import HardwareError
+
+EXIT_USER_ERROR = 2
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="phasewatch",
+        description="Acquisition daemon for phase-contrast microscopes inside incubators.",
+    )
+    parser.add_argument("--version", action="version", version=f"phasewatch {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for info in sorted(pkgutil.iter_modules(daemon.commands.__path__), key=lambda m: m.name):
+        module = importlib.import_module(f"daemon.commands.{info.name}")
+        register = getattr(module, "register", None)
+        if register is not None:
+            register(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        result = args.func(args)
+        if inspect.iscoroutine(result):
+            result = asyncio.run(result)
+        return int(result or 0)
+    except (ConfigError, HardwareError) as exc:
+        print(f"phasewatch: {exc}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except OSError as exc:
+        where = f" ({exc.filename})" if exc.filename else ""
+        print(f"phasewatch: {exc.strerror or exc}{where}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except KeyboardInterrupt:
+        print("phasewatch: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

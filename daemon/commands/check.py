@@ -1,0 +1,75 @@
+"""``phasewatch check PROFILE [--probe]``: validate a profile, optionally open the hardware."""
+
+from __future__ import annotations
+
+import argparse
+
+import numpy as np
+
+from daemon.commands.common import print_json
+from daemon.hardware import build_scope
+from daemon.profile import Profile, load_profile
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("check", help="validate a scope profile; --probe also opens the hardware")
+    p.add_argument("profile", help="profile path or name in hw_profiles/")
+    p.add_argument("--probe", action="store_true", help="open camera and controller and report what was found")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.set_defaults(func=run)
+
+
+def summary(profile: Profile) -> dict[str, object]:
+    o, s, f = profile.optics, profile.stage, profile.focus
+    cam = profile.camera
+    return {
+        "profile": str(profile.path),
+        "scope": profile.scope.name,
+        "camera": f"{cam.driver} {cam.width_px}x{cam.height_px} {cam.bit_depth}-bit",
+        "objective": o.objective,
+        "pixel_size_um": round(o.pixel_size_um, 4),
+        "field_of_view_um": [round(cam.width_px * o.pixel_size_um, 1), round(cam.height_px * o.pixel_size_um, 1)],
+        "depth_of_field_um": round(o.depth_of_field_um, 2),
+        "stage": f"{s.driver}" + (f" on {s.port} at {s.baud} baud" if s.driver == "gcode" else ""),
+        "limits_um": {"x": [s.x_min_um, s.x_max_um], "y": [s.y_min_um, s.y_max_um], "z": [f.z_min_um, f.z_safe_max_um]},
+        "simulated": profile.is_simulated,
+    }
+
+
+async def probe(profile: Profile) -> dict[str, object]:
+    scope = build_scope(profile)
+    async with scope:
+        frame = await scope.capture()
+        pos = await scope.position()
+        px = frame.pixels
+        full_scale = float(2**frame.bit_depth - 1)
+        return {
+            "camera": scope.camera.describe(),
+            "controller": scope.motion.describe(),
+            "position_um": {"x": pos.x_um, "y": pos.y_um, "z": pos.z_um},
+            "test_frame": {
+                "shape": list(px.shape),
+                "mean_fraction_of_full_scale": round(float(np.mean(px)) / full_scale, 4),
+                "saturated_fraction": round(float(np.mean(px >= full_scale)), 6),
+            },
+        }
+
+
+async def run(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    report: dict[str, object] = {"valid": True, **summary(profile)}
+    if args.probe:
+        report["probe"] = await probe(profile)
+    if args.json:
+        print_json(report)
+        return 0
+    print(f"{profile.path}: valid")
+    for key, value in report.items():
+        if key in ("valid", "probe"):
+            continue
+        print(f"  {key}: {value}")
+    if args.probe:
+        print("  probe:")
+        for key, value in report["probe"].items():  # type: ignore[union-attr]
+            print(f"    {key}: {value}")
+    return 0

@@ -1,0 +1,85 @@
+"""``phasewatch snap``: capture one frame and save it as a lossless (OME-)TIFF."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import datetime as dt
+import os
+from pathlib import Path
+
+import numpy as np
+import tifffile
+
+from daemon.commands.common import add_profile_options, truth_beside
+from daemon.hardware import build_scope
+from daemon.profile import load_profile
+from drivers.base import Frame
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("snap", help="capture one frame and save it as a lossless TIFF")
+    add_profile_options(p)
+    p.add_argument("--output", "-o", type=Path, required=True, help="file to write (.tif)")
+    p.add_argument("--x-um", type=float, default=None, help="stage x before the frame")
+    p.add_argument("--y-um", type=float, default=None, help="stage y before the frame")
+    p.add_argument("--z-um", type=float, default=None, help="focus position before the frame")
+    p.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: profile)")
+    p.add_argument("--gain-db", type=float, default=None, help="gain (default: profile)")
+    p.set_defaults(func=run)
+
+
+def write_tiff(path: Path, frame: Frame, *, pixel_size_um: float, x_um: float, y_um: float, z_um: float) -> None:
+    """Write atomically: a temporary name, flushed and synced, then renamed over ``path``."""
+    acquired = dt.datetime.fromtimestamp(frame.t_s, tz=dt.timezone.utc).isoformat()
+    tmp = path.with_name(f".{path.name}.partial")
+    metadata = {
+        "axes": "YX",
+        "PhysicalSizeX": pixel_size_um,
+        "PhysicalSizeXUnit": "µm",
+        "PhysicalSizeY": pixel_size_um,
+        "PhysicalSizeYUnit": "µm",
+        "Plane": {
+            "PositionX": x_um, "PositionXUnit": "µm",
+            "PositionY": y_um, "PositionYUnit": "µm",
+            "PositionZ": z_um, "PositionZUnit": "µm",
+            "ExposureTime": frame.exposure_ms, "ExposureTimeUnit": "ms",
+        },
+        "AcquisitionDate": acquired,
+    }
+    with open(tmp, "wb") as fh:
+        tifffile.imwrite(fh, np.ascontiguousarray(frame.pixels), ome=True, photometric="minisblack", metadata=metadata)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+async def run(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    if args.output.suffix.lower() not in (".tif", ".tiff"):
+        print(f"phasewatch: --output {args.output}: use a .tif or .tiff name (lossless TIFF)")
+        return 2
+    if not args.output.parent.exists():
+        print(f"phasewatch: --output {args.output}: folder {args.output.parent} does not exist")
+        return 2
+    scope = build_scope(profile, sim_speed=args.sim_speed)
+    async with scope:
+        if args.x_um is not None or args.y_um is not None or args.z_um is not None:
+            await scope.move_to(x_um=args.x_um, y_um=args.y_um, z_um=args.z_um)
+        pos = await scope.position()
+        frame = await scope.capture(exposure_ms=args.exposure_ms, gain_db=args.gain_db)
+        await asyncio.to_thread(
+            write_tiff, args.output, frame,
+            pixel_size_um=profile.optics.pixel_size_um, x_um=pos.x_um, y_um=pos.y_um, z_um=pos.z_um,
+        )
+        truth = scope.true_focus_z_um()
+    h, w = frame.pixels.shape
+    print(f"saved {args.output} ({w}x{h}, {frame.bit_depth}-bit, exposure {frame.exposure_ms:g} ms)")
+    print(f"  stage x {pos.x_um:.1f} um, y {pos.y_um:.1f} um, z {truth_beside(pos.z_um, truth, 'um', '.1f')}")
+    if truth is not None:
+        print(f"  defocus against the simulator's focal plane: {pos.z_um - truth:+.1f} um")
+        well = scope.sim.world.well_at(pos.x_um, pos.y_um) if scope.sim else None
+        if well and scope.sim:
+            cov = scope.sim.world.true_confluence(pos.x_um, pos.y_um, frame.t_s)
+            print(f"  well {well}; true coverage of this field {cov * 100:.1f} %")
+    return 0

@@ -1,0 +1,143 @@
+"""The scope: the one owner of camera, motion controller and lamp in the daemon.
+
+Everything that images or moves (live view, manual control, autofocus, calibration,
+time-lapses) goes through one :class:`Scope`. Its lock serialises hardware use, and
+``holder`` names who has it so that a refusal can say why.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import dataclasses
+from collections.abc import AsyncIterator
+from typing import TYPE_CHECKING, Any
+
+from drivers.base import Camera, Frame, MotionController, Position
+from drivers.clock import Clock
+
+if TYPE_CHECKING:
+    from daemon.profile import Profile
+    from drivers.sim.controller import GcodeEmulator
+    from drivers.sim.world import SimWorld
+
+
+@dataclasses.dataclass
+class SimHandles:
+    """The simulated scope's ground truth, for tests and for truth-beside-estimate reports."""
+
+    world: SimWorld
+    emulator: GcodeEmulator
+
+    def true_focus_z_um(self, x_um: float, y_um: float, t_s: float) -> float:
+        return self.world.true_focus_z_um(x_um, y_um, t_s)
+
+
+class Scope:
+    def __init__(
+        self,
+        profile: Profile,
+        camera: Camera,
+        motion: MotionController,
+        clock: Clock,
+        sim: SimHandles | None = None,
+    ) -> None:
+        self.profile = profile
+        self.camera = camera
+        self.motion = motion
+        self.clock = clock
+        self.sim = sim
+        self.lock = asyncio.Lock()
+        self.holder: str | None = None
+        self.frames_captured = 0
+        self.last_frame: Frame | None = None
+        self.last_position: Position | None = None
+
+    async def start(self) -> None:
+        await self.motion.connect()
+        try:
+            await self.camera.open()
+        except BaseException:
+            await self.motion.close()
+            raise
+        if self.profile.stage.home_on_connect:
+            await self.motion.home()
+        self.last_position = await self.motion.position()
+
+    async def stop(self) -> None:
+        # Close both even if one fails, so the serial port and camera are never left held.
+        errors: list[BaseException] = []
+        for closer in (self.camera.close, self.motion.close):
+            try:
+                await closer()
+            except Exception as exc:  # noqa: BLE001 - reported below, after both are closed
+                errors.append(exc)
+        if self.sim is not None:
+            self.sim.emulator.stop()
+        if errors:
+            raise errors[0]
+
+    async def __aenter__(self) -> Scope:
+        await self.start()
+        return self
+
+    async def __aexit__(self, *exc: object) -> None:
+        await self.stop()
+
+    @contextlib.asynccontextmanager
+    async def claim(self, holder: str) -> AsyncIterator[Scope]:
+        """Hold the hardware for one job (``holder`` is shown to anyone refused meanwhile)."""
+        async with self.lock:
+            self.holder = holder
+            try:
+                yield self
+            finally:
+                self.holder = None
+
+    async def move_to(
+        self, x_um: float | None = None, y_um: float | None = None, z_um: float | None = None
+    ) -> Position:
+        """Move and wait until settled. Soft limits are checked by the driver before sending."""
+        self.last_position = await self.motion.move_to(x_um=x_um, y_um=y_um, z_um=z_um)
+        return self.last_position
+
+    async def position(self) -> Position:
+        self.last_position = await self.motion.position()
+        return self.last_position
+
+    async def capture(
+        self,
+        *,
+        exposure_ms: float | None = None,
+        gain_db: float | None = None,
+        lamp: bool = True,
+    ) -> Frame:
+        """Expose one frame with the LED on only as long as needed (light harms living cells)."""
+        cam = self.profile.camera
+        await self.camera.set_exposure_ms(exposure_ms if exposure_ms is not None else cam.exposure_ms)
+        await self.camera.set_gain_db(gain_db if gain_db is not None else cam.gain_db)
+        illum = self.profile.illumination
+        if lamp:
+            await self.motion.set_lamp(True, illum.level)
+            await self.clock.sleep(illum.warmup_ms / 1000.0)
+        else:
+            await self.motion.set_lamp(False)
+        try:
+            frame = await self.camera.grab()
+        finally:
+            if lamp and illum.off_between_frames:
+                await self.motion.set_lamp(False)
+        self.frames_captured += 1
+        self.last_frame = frame
+        return frame
+
+    async def capture_at(self, z_um: float, **kwargs: Any) -> Frame:
+        await self.move_to(z_um=z_um)
+        return await self.capture(**kwargs)
+
+    def true_focus_z_um(self) -> float | None:
+        """The simulator's true focal plane under the objective now; None on real hardware."""
+        if self.sim is None or self.last_position is None:
+            return None
+        p = self.last_position
+        return self.sim.true_focus_z_um(p.x_um, p.y_um, self.clock.now())
