@@ -13,7 +13,7 @@ import dataclasses
 from collections.abc import AsyncIterator
 from typing import TYPE_CHECKING, Any
 
-from drivers.base import Camera, Frame, MotionController, Position
+from drivers.base import Camera, Frame, MotionController, Position, PositionUnknownError
 from drivers.clock import Clock
 
 if TYPE_CHECKING:
@@ -62,7 +62,11 @@ class Scope:
             raise
         if self.profile.stage.home_on_connect:
             await self.motion.home()
-        self.last_position = await self.motion.position()
+        try:
+            self.last_position = await self.motion.position()
+        except PositionUnknownError:
+            # Not homed yet: moves are refused by the driver until the user homes the stage.
+            self.last_position = None
 
     async def stop(self) -> None:
         # Close both even if one fails, so the serial port and camera are never left held.
@@ -100,6 +104,10 @@ class Scope:
         """Move and wait until settled. Soft limits are checked by the driver before sending."""
         self.last_position = await self.motion.move_to(x_um=x_um, y_um=y_um, z_um=z_um)
         return self.last_position
+
+    async def home(self) -> Position:
+        await self.motion.home()
+        return await self.position()
 
     async def position(self) -> Position:
         self.last_position = await self.motion.position()

@@ -1,0 +1,737 @@
+"""A simulated G-code motion controller, served on a pseudo-terminal.
+
+The real serial driver (:mod:`drivers.gcode`) talks to this emulator through pyserial
+exactly as it talks to a controller board on a USB serial port, so the simulated scope
+exercises the real driver, its timeouts and its recovery paths.
+
+Dialect (RepRap style; millimetres and mm/min on the wire, one command per line)
+-------------------------------------------------------------------------------
+``G90`` / ``G91``          absolute / relative coordinates for following moves
+``G0``/``G1 X Y Z F``      move (F: feed rate in mm/min, modal); ``ok`` once the move is
+                           queued (up to 16 moves are queued, then ``ok`` waits for room)
+``G28 [X] [Y] [Z]``        home the named axes (all when none are named): Z first, down to
+                           its switch, then X and Y; ``ok`` when homing has finished
+``G92 X Y Z``              declare the current position of the named axes
+``M114``                   ``X:12.500 Y:3.000 Z:1.500`` then ``ok``: where the motors are
+                           commanded to be (the end of the last queued move), as common
+                           firmware reports it; send ``M400`` first for a settled position
+``M400``                   ``ok`` once every queued move has finished
+``M106 P<ch> S<0-255>``    PWM output ``ch`` (0-7, default 0) to level S (default 255)
+``M107 P<ch>``             PWM output ``ch`` off
+``M115``                   one line describing the firmware, then ``ok``
+``M112``                   emergency stop, acted on as soon as it arrives (even while an
+                           ``M400`` or ``G28`` is waiting): motion is aborted where it is
+``M999``                   restart after a halt
+Every accepted line is answered ``ok``. A refused line is answered by one line
+``Error:<text>`` and no ``ok``. After ``M112`` the controller is halted and answers
+``!! <reason>`` to every line but ``M999``. On boot (and after a reset) it prints
+``start`` and one ``echo:`` line describing itself. Lines starting with ``;`` and text
+after ``;`` are comments; empty lines get no answer.
+
+Mechanics
+---------
+Moves follow a trapezoidal speed profile along the straight line, limited per axis by
+the profile's speeds and accelerations (``[stage]`` for X and Y, ``[focus]`` for Z).
+All timing is read from the given clock, so an accelerated clock speeds moves up. The
+focus drive has true backlash (``[sim.motion] z_backlash_um``): the mechanics follow
+the motor with play, so after a move downwards the objective sits higher than the motor
+position by the backlash, and after a move upwards the two agree. The mechanical travel
+is wider than the profile's soft limits by ``travel_margin_um``; on z the objective hits
+the vessel ``z_crash_margin_um`` above ``z_safe_max_um``. A move whose end lies outside
+the travel is refused with an ``Error:`` line and no motion. The home switches sit at
+the profile's lower limits (``x_min_um``, ``y_min_um``, ``z_min_um``).
+
+Faults (:meth:`GcodeEmulator.inject`)
+-------------------------------------
+``reset``       reboot: motion stops where it is, queued lines are lost, the firmware's
+                coordinates restart at 0 (the mechanics do not move), ``start`` is printed
+``disconnect``  the cable is pulled: the pseudo-terminal closes and the link path
+                disappears; motion already queued runs on. :meth:`reconnect` plugs it
+                back in: a new pseudo-terminal behind the same link path
+``garble``      the first line of the next reply arrives as noise (high-bit bytes)
+``drop_reply``  the next reply is never sent
+``stall``       the next move jams half-way: it never finishes and ``M400`` never
+                answers until :meth:`clear_faults`, ``M112`` or a reset
+:meth:`start` returns a stable link path (a symbolic link to the current pseudo-terminal)
+for pyserial, the way a udev rule gives a board a stable name.
+"""
+
+from __future__ import annotations
+
+import collections
+import dataclasses
+import logging
+import math
+import os
+import re
+import select
+import shutil
+import tempfile
+import threading
+import time
+import tty
+from pathlib import Path
+from typing import TYPE_CHECKING, Callable
+
+from drivers.base import Position
+
+if TYPE_CHECKING:
+    from daemon.profile import FocusSection, StageSection
+    from drivers.clock import Clock
+    from drivers.sim.config import SimMotion
+
+log = logging.getLogger(__name__)
+
+PWM_OUTPUTS = 8
+PLANNER_DEPTH = 16
+BANNER = "start"
+INFO_LINE = "echo:phasewatch simulated motion controller 1.0; axes X Y Z; PWM outputs 0-7"
+FIRMWARE_LINE = "firmware: phasewatch-sim motion 1.0; axes X Y Z; PWM outputs 0-7; planner 16 moves"
+FAULTS = ("reset", "disconnect", "garble", "drop_reply", "stall")
+
+# Real seconds between looks at the clock while a move runs: small against the
+# link's millisecond latency, large enough not to spin a CPU core.
+_POLL_S = 0.002
+_STALL_FRACTION = 0.5
+_AXES = ("X", "Y", "Z")
+_WORD = re.compile(r"\s*([A-Z])([-+]?(?:\d+(?:\.\d*)?|\.\d+))?")
+
+Vec = tuple[float, float, float]
+
+
+class _Refused(Exception):
+    """A command the controller answers with ``Error:<text>``."""
+
+
+def trapezoid_duration_s(distance_um: float, speed_um_s: float, accel_um_s2: float) -> float:
+    """Time of a point-to-point move from rest to rest with limited speed and acceleration.
+
+    Constant-acceleration kinematics: with ramps of length v²/(2a) each, a move longer
+    than v²/a takes d/v + v/a; a shorter one never reaches v and takes 2·√(d/a).
+    Units: um, um/s, um/s², result in s.
+    """
+    if distance_um <= 0.0:
+        return 0.0
+    if distance_um >= speed_um_s**2 / accel_um_s2:
+        return distance_um / speed_um_s + speed_um_s / accel_um_s2
+    return 2.0 * math.sqrt(distance_um / accel_um_s2)
+
+
+def trapezoid_travel_um(t_s: float, distance_um: float, speed_um_s: float, accel_um_s2: float) -> float:
+    """Distance covered ``t_s`` seconds into the move of :func:`trapezoid_duration_s`."""
+    total_s = trapezoid_duration_s(distance_um, speed_um_s, accel_um_s2)
+    if t_s <= 0.0:
+        return 0.0
+    if t_s >= total_s:
+        return distance_um
+    ramp_s = min(speed_um_s / accel_um_s2, total_s / 2.0)
+    if t_s < ramp_s:
+        return 0.5 * accel_um_s2 * t_s**2
+    if t_s <= total_s - ramp_s:
+        return 0.5 * accel_um_s2 * ramp_s**2 + speed_um_s * (t_s - ramp_s)
+    return distance_um - 0.5 * accel_um_s2 * (total_s - t_s) ** 2
+
+
+def _play(mech_z_um: float, motor_z_um: float, backlash_um: float) -> float:
+    """Mechanics of a drive with play: they lie between the motor and motor + backlash.
+
+    Moving up pushes the mechanics along at the motor position; moving down they trail
+    above it by the backlash; on reversal the motor crosses the gap before they follow.
+    """
+    return min(max(mech_z_um, motor_z_um), motor_z_um + backlash_um)
+
+
+@dataclasses.dataclass(slots=True)
+class _Segment:
+    start: Vec
+    end: Vec
+    speed_um_s: float
+    accel_um_s2: float
+    t0_s: float
+    stalled: bool = False
+
+    @property
+    def length_um(self) -> float:
+        return math.dist(self.start, self.end)
+
+    @property
+    def duration_s(self) -> float:
+        return trapezoid_duration_s(self.length_um, self.speed_um_s, self.accel_um_s2)
+
+    @property
+    def end_s(self) -> float:
+        return math.inf if self.stalled else self.t0_s + self.duration_s
+
+    def at(self, t_s: float) -> Vec:
+        elapsed = t_s - self.t0_s
+        if self.stalled:
+            elapsed = min(elapsed, _STALL_FRACTION * self.duration_s)
+        length = self.length_um
+        if length == 0.0:
+            return self.end
+        f = trapezoid_travel_um(elapsed, length, self.speed_um_s, self.accel_um_s2) / length
+        return tuple(a + f * (b - a) for a, b in zip(self.start, self.end))  # type: ignore[return-value]
+
+
+class GcodeEmulator:
+    """The simulated controller; see the module docstring for the dialect and faults."""
+
+    def __init__(
+        self,
+        *,
+        clock: Clock,
+        stage: StageSection,
+        focus: FocusSection,
+        motion: SimMotion,
+        start: Position | None = None,
+        link_dir: str | Path | None = None,
+    ) -> None:
+        self._clock = clock
+        self._stage = stage
+        self._focus = focus
+        self._motion = motion
+        self._home: Vec = (stage.x_min_um, stage.y_min_um, focus.z_min_um)
+        m = motion.travel_margin_um
+        self._travel_lo: Vec = (stage.x_min_um - m, stage.y_min_um - m, focus.z_min_um - m)
+        self._travel_hi: Vec = (stage.x_max_um + m, stage.y_max_um + m, focus.z_safe_max_um + motion.z_crash_margin_um)
+        self._speed_max: Vec = (stage.xy_speed_um_s, stage.xy_speed_um_s, focus.z_speed_um_s)
+        self._accel_max: Vec = (stage.xy_accel_um_s2, stage.xy_accel_um_s2, focus.z_accel_um_s2)
+        first = start if start is not None else Position(*self._home)
+        for axis, value, lo, hi in zip(_AXES, (first.x_um, first.y_um, first.z_um), self._travel_lo, self._travel_hi):
+            if not lo <= value <= hi:
+                raise ValueError(f"start {axis.lower()} = {value} um lies outside the mechanical travel {lo}..{hi} um")
+
+        self._lock = threading.RLock()
+        self._motor: Vec = (first.x_um, first.y_um, first.z_um)
+        self._mech_z_um = first.z_um
+        self._queue: list[_Segment] = []
+        # The board has been homed before: its coordinates are the stage coordinates.
+        self._offset: Vec = (0.0, 0.0, 0.0)
+        self._absolute = True
+        self._feed_um_s = stage.xy_speed_um_s
+        self._pwm = [0.0] * PWM_OUTPUTS
+        self._halted: str | None = None
+        self._epoch = 0
+        self._garble_next = False
+        self._drop_next = False
+        self._stall_next = False
+
+        self.received: list[tuple[float, str]] = []
+        self._pending: collections.deque[str] = collections.deque()
+        self._inbuf = b""
+        self._master_fd: int | None = None
+        self._slave_fd: int | None = None
+        self._device_path: str | None = None
+        self._own_link_dir = link_dir is None
+        self._link_dir = Path(link_dir) if link_dir is not None else None
+        self._link_path: Path | None = None
+        self._thread: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self._disconnect_asked = threading.Event()
+        self._disconnect_done = threading.Event()
+
+    # ----------------------------------------------------------------- public
+
+    def start(self) -> str:
+        """Open the pseudo-terminal, boot (print the banner), serve; return the link path."""
+        if self._thread is not None:
+            raise RuntimeError("the emulator is already running")
+        if self._link_dir is None:
+            self._link_dir = Path(tempfile.mkdtemp(prefix="phasewatch-sim-"))
+        self._link_dir.mkdir(parents=True, exist_ok=True)
+        self._link_path = self._link_dir / "ttySIM0"
+        with self._lock:
+            self._open_pty()
+            self._write_lines([BANNER, INFO_LINE])
+        self._stopping.clear()
+        self._thread = threading.Thread(target=self._serve, name="gcode-emulator", daemon=True)
+        self._thread.start()
+        return str(self._link_path)
+
+    def stop(self) -> None:
+        self._stopping.set()
+        with self._lock:
+            self._epoch += 1
+        if self._thread is not None:
+            self._thread.join(timeout=5.0)
+            self._thread = None
+        with self._lock:
+            self._close_pty()
+        if self._own_link_dir and self._link_dir is not None:
+            shutil.rmtree(self._link_dir, ignore_errors=True)
+            self._link_dir = None
+
+    @property
+    def link_path(self) -> str:
+        if self._link_path is None:
+            raise RuntimeError("the emulator has not been started")
+        return str(self._link_path)
+
+    @property
+    def device_path(self) -> str | None:
+        """The pseudo-terminal behind the link now (None while disconnected)."""
+        return self._device_path
+
+    def reconnect(self) -> str:
+        """Plug the cable back in after ``disconnect``: a new pseudo-terminal, same link path."""
+        with self._lock:
+            self._close_pty()
+            self._inbuf = b""
+            self._pending.clear()
+            self._open_pty()
+        return self.link_path
+
+    def physical_position(self) -> Position:
+        """Where the mechanics truly are now (what the simulated camera images)."""
+        with self._lock:
+            now = self._clock.now()
+            self._advance(now)
+            motor = self._motor_at(now)
+            return Position(motor[0], motor[1], self._mech_for(motor))
+
+    def lamp_level(self, channel: int = 0) -> float:
+        """Level 0..1 of PWM output ``channel``."""
+        with self._lock:
+            return self._pwm[channel]
+
+    def inject(self, fault: str) -> None:
+        """Inject one of :data:`FAULTS`; see the module docstring for what each does."""
+        if fault not in FAULTS:
+            raise ValueError(f"unknown fault {fault!r}; one of {', '.join(FAULTS)}")
+        if fault == "reset":
+            with self._lock:
+                self._reboot()
+        elif fault == "disconnect":
+            if self._thread is None or not self._thread.is_alive():
+                with self._lock:
+                    self._close_pty()
+                return
+            self._disconnect_done.clear()
+            self._disconnect_asked.set()
+            if not self._disconnect_done.wait(timeout=5.0):
+                raise RuntimeError("the emulator did not close its pseudo-terminal")
+        else:
+            with self._lock:
+                if fault == "garble":
+                    self._garble_next = True
+                elif fault == "drop_reply":
+                    self._drop_next = True
+                else:
+                    self._stall_next = True
+
+    def clear_faults(self) -> None:
+        """Clear pending reply faults and free a jammed move (it then runs to its end)."""
+        with self._lock:
+            now = self._clock.now()
+            self._garble_next = self._drop_next = self._stall_next = False
+            self._advance(now)
+            if self._queue and self._queue[0].stalled:
+                seg = self._queue[0]
+                frozen = seg.at(now)
+                self._mech_z_um = self._mech_for(frozen)
+                self._queue[0] = dataclasses.replace(seg, start=frozen, t0_s=now, stalled=False)
+                self._retime(now)
+
+    # --------------------------------------------------------------- the pty
+
+    def _open_pty(self) -> None:
+        master, slave = os.openpty()
+        # Raw: no echo and no line editing, so bytes pass unchanged as on a UART.
+        tty.setraw(slave)
+        os.set_blocking(master, False)
+        self._master_fd, self._slave_fd = master, slave
+        self._device_path = os.ttyname(slave)
+        assert self._link_path is not None
+        tmp = self._link_path.with_name(self._link_path.name + ".new")
+        tmp.unlink(missing_ok=True)
+        tmp.symlink_to(self._device_path)
+        os.replace(tmp, self._link_path)
+
+    def _close_pty(self) -> None:
+        for fd in (self._master_fd, self._slave_fd):
+            if fd is not None:
+                try:
+                    os.close(fd)
+                except OSError:
+                    pass
+        self._master_fd = self._slave_fd = None
+        self._device_path = None
+        if self._link_path is not None:
+            self._link_path.unlink(missing_ok=True)
+
+    def _write_lines(self, lines: list[str]) -> None:
+        """Send lines as they are (banner); a full or closed link drops them, like a UART."""
+        if self._master_fd is None:
+            return
+        data = "".join(f"{line}\n" for line in lines).encode("ascii")
+        try:
+            os.write(self._master_fd, data)
+        except OSError:
+            log.debug("emulator output dropped: %r", data)
+
+    def _reply(self, *lines: str) -> None:
+        """Send the reply to one command, through the injected reply faults."""
+        if self._drop_next:
+            self._drop_next = False
+            return
+        if self._garble_next and lines:
+            self._garble_next = False
+            noise = bytes((b ^ 0x5A) | 0x80 for b in lines[0].encode("ascii"))
+            if self._master_fd is not None:
+                try:
+                    os.write(self._master_fd, noise + b"\n")
+                except OSError:
+                    pass
+            lines = lines[1:]
+        self._write_lines(list(lines))
+
+    # ------------------------------------------------------------ serving
+
+    def _serve(self) -> None:
+        try:
+            while not self._stopping.is_set():
+                with self._lock:
+                    line = self._pending.popleft() if self._pending else None
+                if line is not None:
+                    self._execute(line)
+                else:
+                    self._read_input(0.02)
+        except Exception:  # a bug here must not die silently behind a pty that stays open
+            log.exception("the G-code emulator stopped serving")
+            raise
+
+    def _read_input(self, timeout_s: float) -> None:
+        """Read what has arrived; act on ``M112`` at once, queue the other lines."""
+        if self._disconnect_asked.is_set():
+            with self._lock:
+                self._close_pty()
+                self._inbuf = b""
+                self._pending.clear()
+            self._disconnect_asked.clear()
+            self._disconnect_done.set()
+        fd = self._master_fd
+        if fd is None:
+            time.sleep(timeout_s)
+            return
+        try:
+            ready, _, _ = select.select([fd], [], [], timeout_s)
+            if not ready:
+                return
+            data = os.read(fd, 4096)
+        except (OSError, ValueError):
+            # No client has the port open, or the fd was closed under us by a disconnect.
+            time.sleep(timeout_s)
+            return
+        with self._lock:
+            if fd != self._master_fd:
+                return
+            self._inbuf += data
+            *complete, self._inbuf = self._inbuf.split(b"\n")
+            for raw in complete:
+                text = raw.decode("ascii", errors="replace").strip()
+                if not text:
+                    continue
+                self.received.append((self._clock.now(), text))
+                if self._is_emergency_stop(text):
+                    self._emergency_stop()
+                else:
+                    self._pending.append(text)
+
+    @staticmethod
+    def _is_emergency_stop(text: str) -> bool:
+        return re.fullmatch(r"M0*112(\s.*|;.*)?", text.strip().upper()) is not None
+
+    def _execute(self, text: str) -> None:
+        with self._lock:
+            epoch = self._epoch
+            if self._halted is not None:
+                if text.upper().startswith("M999"):
+                    self._halted = None
+                    self._reply("ok")
+                else:
+                    self._reply(f"!! {self._halted}")
+                return
+        try:
+            parsed = self._parse(text)
+        except _Refused as exc:
+            with self._lock:
+                self._reply(f"Error:{exc}")
+            return
+        if parsed is None:
+            return
+        command, params = parsed
+        handler = self._handlers().get(command)
+        try:
+            if handler is None:
+                raise _Refused(f"unknown command '{command}'")
+            handler(params, epoch)
+        except _Refused as exc:
+            with self._lock:
+                if self._epoch == epoch:
+                    self._reply(f"Error:{exc}")
+
+    @staticmethod
+    def _parse(text: str) -> tuple[str, dict[str, float | None]] | None:
+        body = text.split(";", 1)[0].strip().upper()
+        if not body:
+            return None
+        words: list[tuple[str, str | None]] = []
+        pos = 0
+        while pos < len(body):
+            m = _WORD.match(body, pos)
+            if m is None or m.end() == pos:
+                raise _Refused(f"cannot read '{text}'")
+            words.append((m.group(1), m.group(2)))
+            pos = m.end()
+        (letter, number), *rest = words
+        if letter not in "GM" or number is None or not number.isdigit():
+            raise _Refused(f"cannot read '{text}': a line starts with a G or M command")
+        params: dict[str, float | None] = {}
+        for key, value in rest:
+            if key in params:
+                raise _Refused(f"'{key}' given twice in '{text}'")
+            params[key] = float(value) if value is not None else None
+        return f"{letter}{int(number)}", params
+
+    def _handlers(self) -> dict[str, Callable[[dict[str, float | None], int], None]]:
+        return {
+            "G0": self._cmd_move,
+            "G1": self._cmd_move,
+            "G28": self._cmd_home,
+            "G90": self._cmd_absolute,
+            "G91": self._cmd_relative,
+            "G92": self._cmd_set_position,
+            "M106": self._cmd_pwm_on,
+            "M107": self._cmd_pwm_off,
+            "M114": self._cmd_report,
+            "M115": self._cmd_firmware,
+            "M400": self._cmd_finish,
+            "M999": self._cmd_restart,
+        }
+
+    # ----------------------------------------------------------- commands
+
+    @staticmethod
+    def _only(params: dict[str, float | None], allowed: str, command: str) -> None:
+        for key in params:
+            if key not in allowed:
+                raise _Refused(f"{command} does not take '{key}'")
+
+    def _cmd_move(self, params: dict[str, float | None], epoch: int) -> None:
+        self._only(params, "XYZF", "G1")
+        for key, value in params.items():
+            if value is None or not math.isfinite(value):
+                raise _Refused(f"'{key}' needs a number")
+        feed = params.get("F")
+        if feed is not None and feed <= 0:
+            raise _Refused("F must be greater than 0 mm/min")
+        if not self._wait_for(lambda: len(self._queue) < PLANNER_DEPTH, epoch):
+            return
+        with self._lock:
+            if self._epoch != epoch:
+                return
+            if feed is not None:
+                self._feed_um_s = feed * 1000.0 / 60.0
+            begin = self._queue_end()
+            logical = [m - o for m, o in zip(begin, self._offset)]
+            for i, axis in enumerate(_AXES):
+                value = params.get(axis)
+                if value is not None:
+                    logical[i] = value * 1000.0 if self._absolute else logical[i] + value * 1000.0
+            target = tuple(v + o for v, o in zip(logical, self._offset))
+            for axis, value, lo, hi, log_um in zip(_AXES, target, self._travel_lo, self._travel_hi, logical):
+                if not lo - 1e-6 <= value <= hi + 1e-6:
+                    raise _Refused(f"{axis}{log_um / 1000.0:.4f} lies outside the travel of the mechanics; not moved")
+            self._queue_move(begin, target, self._feed_um_s)  # type: ignore[arg-type]
+            self._reply("ok")
+
+    def _cmd_home(self, params: dict[str, float | None], epoch: int) -> None:
+        self._only(params, "XYZ", "G28")
+        axes = [axis in params for axis in _AXES] if params else [True, True, True]
+        if not self._wait_for(lambda: not self._queue, epoch):
+            return
+        with self._lock:
+            if self._epoch != epoch:
+                return
+            now = self._clock.now()
+            here = self._motor
+            if axes[2]:
+                down = (here[0], here[1], self._home[2])
+                self._queue_move(here, down, math.inf, now=now)
+                here = down
+            if axes[0] or axes[1]:
+                across = (self._home[0] if axes[0] else here[0], self._home[1] if axes[1] else here[1], here[2])
+                self._queue_move(here, across, math.inf, now=now)
+        if not self._wait_for(lambda: not self._queue, epoch):
+            return
+        with self._lock:
+            if self._epoch != epoch:
+                return
+            # The switch is found on the way down, then the axis backs off upwards: the
+            # play is taken up from below, so mechanics and motor agree at home.
+            if axes[2]:
+                self._mech_z_um = self._motor[2]
+            self._offset = tuple(0.0 if homed else o for homed, o in zip(axes, self._offset))  # type: ignore[assignment]
+            self._reply("ok")
+
+    def _cmd_absolute(self, params: dict[str, float | None], epoch: int) -> None:
+        with self._lock:
+            self._absolute = True
+            self._reply("ok")
+
+    def _cmd_relative(self, params: dict[str, float | None], epoch: int) -> None:
+        with self._lock:
+            self._absolute = False
+            self._reply("ok")
+
+    def _cmd_set_position(self, params: dict[str, float | None], epoch: int) -> None:
+        self._only(params, "XYZ", "G92")
+        if not params or any(v is None for v in params.values()):
+            raise _Refused("G92 needs at least one axis with a value, e.g. G92 X0 Y0 Z1.5")
+        if not self._wait_for(lambda: not self._queue, epoch):
+            return
+        with self._lock:
+            if self._epoch != epoch:
+                return
+            offset = list(self._offset)
+            for i, axis in enumerate(_AXES):
+                value = params.get(axis)
+                if value is not None:
+                    offset[i] = self._motor[i] - value * 1000.0
+            self._offset = tuple(offset)  # type: ignore[assignment]
+            self._reply("ok")
+
+    def _pwm_channel(self, params: dict[str, float | None], command: str) -> int:
+        p = params.get("P", 0.0)
+        if p is None or p != int(p) or not 0 <= p < PWM_OUTPUTS:
+            raise _Refused(f"{command} P must be a PWM output 0-{PWM_OUTPUTS - 1}")
+        return int(p)
+
+    def _cmd_pwm_on(self, params: dict[str, float | None], epoch: int) -> None:
+        self._only(params, "PS", "M106")
+        channel = self._pwm_channel(params, "M106")
+        s = params.get("S", 255.0)
+        if s is None or not 0.0 <= s <= 255.0:
+            raise _Refused("M106 S must be 0-255")
+        with self._lock:
+            self._pwm[channel] = s / 255.0
+            self._reply("ok")
+
+    def _cmd_pwm_off(self, params: dict[str, float | None], epoch: int) -> None:
+        self._only(params, "P", "M107")
+        channel = self._pwm_channel(params, "M107")
+        with self._lock:
+            self._pwm[channel] = 0.0
+            self._reply("ok")
+
+    def _cmd_report(self, params: dict[str, float | None], epoch: int) -> None:
+        with self._lock:
+            end = self._queue_end()
+            x, y, z = ((m - o) / 1000.0 for m, o in zip(end, self._offset))
+            self._reply(f"X:{x:.3f} Y:{y:.3f} Z:{z:.3f}", "ok")
+
+    def _cmd_firmware(self, params: dict[str, float | None], epoch: int) -> None:
+        with self._lock:
+            self._reply(FIRMWARE_LINE, "ok")
+
+    def _cmd_finish(self, params: dict[str, float | None], epoch: int) -> None:
+        if not self._wait_for(lambda: not self._queue, epoch):
+            return
+        with self._lock:
+            if self._epoch == epoch:
+                self._reply("ok")
+
+    def _cmd_restart(self, params: dict[str, float | None], epoch: int) -> None:
+        with self._lock:
+            self._reply("ok")
+
+    # ------------------------------------------------------------- motion
+
+    def _queue_end(self) -> Vec:
+        return self._queue[-1].end if self._queue else self._motor
+
+    def _queue_move(self, begin: Vec, target: Vec, feed_um_s: float, *, now: float | None = None) -> None:
+        delta = [b - a for a, b in zip(begin, target)]
+        length = math.hypot(*delta)
+        if length == 0.0:
+            return
+        # Limit the path speed and acceleration so that no axis exceeds its own.
+        speed, accel = feed_um_s, math.inf
+        for d, v_max, a_max in zip(delta, self._speed_max, self._accel_max):
+            if d != 0.0:
+                speed = min(speed, v_max * length / abs(d))
+                accel = min(accel, a_max * length / abs(d))
+        t_now = self._clock.now() if now is None else now
+        t0 = max(t_now, self._queue[-1].end_s) if self._queue else t_now
+        seg = _Segment(begin, target, speed, accel, t0, stalled=self._stall_next)
+        self._stall_next = False
+        self._queue.append(seg)
+
+    def _retime(self, now: float) -> None:
+        t = now
+        for seg in self._queue:
+            seg.t0_s = max(seg.t0_s, t) if seg is self._queue[0] else t
+            t = seg.end_s
+
+    def _advance(self, now: float) -> None:
+        """Retire the moves that have finished by ``now``."""
+        while self._queue and self._queue[0].end_s <= now:
+            seg = self._queue.pop(0)
+            self._motor = seg.end
+            self._mech_z_um = _play(self._mech_z_um, seg.end[2], self._motion.z_backlash_um)
+
+    def _motor_at(self, now: float) -> Vec:
+        if self._queue and self._queue[0].t0_s <= now:
+            return self._queue[0].at(now)
+        return self._motor
+
+    def _mech_for(self, motor: Vec) -> float:
+        # Each move is monotonic in z, so the play evaluated from the move's start is exact.
+        return _play(self._mech_z_um, motor[2], self._motion.z_backlash_um)
+
+    def _interrupt(self) -> None:
+        """Stop all motion where it is now (reset, emergency stop)."""
+        now = self._clock.now()
+        self._advance(now)
+        motor = self._motor_at(now)
+        self._mech_z_um = self._mech_for(motor)
+        self._motor = motor
+        self._queue.clear()
+
+    def _wait_for(self, done: Callable[[], bool], epoch: int) -> bool:
+        """Block this command until ``done()``; False if a reset, stop or M112 came first.
+
+        Input keeps being read meanwhile, so an ``M112`` acts at once, as on boards that
+        scan their serial input for it.
+        """
+        while True:
+            with self._lock:
+                if self._epoch != epoch or self._stopping.is_set():
+                    return False
+                now = self._clock.now()
+                self._advance(now)
+                if done():
+                    return True
+                next_end = self._queue[0].end_s if self._queue else math.inf
+                wait_s = min(_POLL_S, max(0.0, (next_end - now) / self._clock.speed))
+            self._read_input(wait_s)
+
+    def _emergency_stop(self) -> None:
+        self._interrupt()
+        self._epoch += 1
+        self._halted = "emergency stop (M112): motion aborted; send M999 to restart"
+        self._reply(f"!! {self._halted}")
+
+    def _reboot(self) -> None:
+        self._interrupt()
+        self._epoch += 1
+        self._pending.clear()
+        self._inbuf = b""
+        # The firmware restarts counting from 0 wherever the mechanics stopped.
+        self._offset = self._motor
+        self._absolute = True
+        self._feed_um_s = self._stage.xy_speed_um_s
+        self._pwm = [0.0] * PWM_OUTPUTS
+        self._halted = None
+        self._garble_next = self._drop_next = self._stall_next = False
+        self._write_lines([BANNER, INFO_LINE])

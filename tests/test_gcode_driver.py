@@ -1,0 +1,459 @@
+"""The real G-code driver (pyserial) talking to the simulated controller over a real
+pseudo-terminal: moves, timing, backlash approach, soft limits, lamp, and every fault."""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import dataclasses
+import math
+import os
+import threading
+import time
+import tty
+from collections.abc import AsyncIterator
+
+import pytest
+
+from daemon.profile import IlluminationSection, StageSection
+from drivers.base import LimitError, MotionController, MotionError, Position, PositionUnknownError
+from drivers.clock import ScaledClock
+from drivers.gcode import GcodeController
+from drivers.limits import approach_overshoot_um
+from drivers.sim.controller import GcodeEmulator
+from tests.gcode_rig import FOCUS, LAMP, MOTION, stage, wait_until
+
+pytestmark = pytest.mark.timeout(30)
+
+PROFILE = "hw_profiles/sim.toml"
+HOME = Position(0.0, 0.0, 0.0)
+
+
+@dataclasses.dataclass
+class Rig:
+    emulator: GcodeEmulator
+    driver: GcodeController
+    clock: ScaledClock
+
+    def sent(self, since: int = 0) -> list[str]:
+        return [line for _, line in self.emulator.received[since:]]
+
+
+@contextlib.asynccontextmanager
+async def rig(
+    *,
+    speed: float = 50.0,
+    stage_section: StageSection | None = None,
+    lamp: IlluminationSection = LAMP,
+    home: bool = True,
+) -> AsyncIterator[Rig]:
+    clock = ScaledClock(speed=speed, start_s=1_772_442_000.0)
+    section = stage_section or stage(reply_timeout_s=0.5)
+    emulator = GcodeEmulator(clock=clock, stage=section, focus=FOCUS, motion=MOTION)
+    port = emulator.start()
+    driver = GcodeController(
+        port, baud=115200, stage=section, focus=FOCUS, illumination=lamp, clock=clock,
+        profile_path=PROFILE, reconnect_attempts=2, reconnect_first_delay_s=0.05,
+    )
+    try:
+        await driver.connect()
+        if home:
+            await driver.home()
+        yield Rig(emulator, driver, clock)
+    finally:
+        await driver.close()
+        emulator.stop()
+
+
+def z_lines(lines: list[str]) -> list[float]:
+    """The Z targets (um) of the G1 lines among ``lines``."""
+    out = []
+    for line in lines:
+        if line.startswith("G1"):
+            for word in line.split():
+                if word.startswith("Z"):
+                    out.append(float(word[1:]) * 1000.0)
+    return out
+
+
+def trapezoid_time_s(d_um: float, v: float, a: float) -> float:
+    # Constant-acceleration kinematics (common practice): d/v + v/a once the move is long
+    # enough to reach v (d >= v^2/a), else 2*sqrt(d/a).
+    return d_um / v + v / a if d_um >= v * v / a else 2.0 * math.sqrt(d_um / a)
+
+
+async def test_implements_the_motion_interface_and_needs_homing_first():
+    async with rig(home=False) as r:
+        assert isinstance(r.driver, MotionController)
+        info = r.driver.describe()
+        assert info["port"] == r.emulator.link_path and info["connected"] is True
+        assert "phasewatch-sim" in str(info["firmware"])
+        assert info["position_um"] is None
+        with pytest.raises(PositionUnknownError, match="home the stage"):
+            await r.driver.position()
+        with pytest.raises(PositionUnknownError):
+            await r.driver.move_to(x_um=1000.0)
+        assert not any(line.startswith("G1") for line in r.sent())
+        await r.driver.home()
+        assert await r.driver.position() == HOME
+        assert r.driver.describe()["position_um"] == {"x": 0.0, "y": 0.0, "z": 0.0}
+
+
+async def test_home_on_connect():
+    async with rig(stage_section=stage(reply_timeout_s=0.5, home_on_connect=True), home=False) as r:
+        assert await r.driver.position() == HOME
+        assert "G28" in r.sent()
+
+
+async def test_absolute_and_relative_moves():
+    async with rig() as r:
+        target = Position(20000.0, 10000.0, 1500.0)
+        assert await r.driver.move_to(20000.0, 10000.0, 1500.0) == target
+        assert await r.driver.position() == target
+        assert r.emulator.physical_position() == target
+        after = await r.driver.move_by(dx_um=-5000.0, dz_um=100.0)
+        assert after == Position(15000.0, 10000.0, 1600.0)
+        assert r.emulator.physical_position() == after
+        # Only the named axis moves.
+        assert await r.driver.move_to(y_um=12345.6) == Position(15000.0, 12345.6, 1600.0)
+        # Sub-micrometre targets survive the wire (0.1 um) though M114 reports 1 um.
+        fine = await r.driver.move_to(z_um=1603.27)
+        assert fine.z_um == 1603.27
+        assert (await r.driver.position()).z_um == 1603.27
+        assert r.emulator.physical_position().z_um == pytest.approx(1603.3, abs=0.051)
+
+
+async def test_moves_take_the_time_speed_and_acceleration_imply():
+    async with rig(speed=5.0) as r:
+        cases = [
+            ("x", 20000.0, (20000.0, None, None), trapezoid_time_s(20000.0, 8000.0, 40000.0), 0.040),
+            ("y", 1000.0, (None, 1000.0, None), trapezoid_time_s(1000.0, 8000.0, 40000.0), 0.040),
+            ("z", 500.0, (None, None, 500.0), trapezoid_time_s(500.0, 1000.0, 5000.0), 0.020),
+        ]
+        for axis, distance, target, move_s, settle_s in cases:
+            t0 = r.clock.now()
+            await r.driver.move_to(*target)
+            elapsed = r.clock.now() - t0
+            # Never sooner than the kinematics allow; the slack above is link latency
+            # (about 10 ms here, times the clock's speed of 5).
+            assert elapsed >= move_s + settle_s - 1e-3, (axis, distance, elapsed, move_s)
+            assert elapsed <= move_s + settle_s + 0.5, (axis, distance, elapsed, move_s)
+        # 20 mm at 8 mm/s with 40 mm/s^2 ramps: 2.5 s + 0.2 s (kinematics, common practice).
+        assert cases[0][3] == pytest.approx(2.7)
+
+
+async def test_every_focus_move_ends_with_an_approach_from_below():
+    async with rig() as r:
+        overshoot = approach_overshoot_um(FOCUS.backlash_um)
+        assert overshoot > FOCUS.backlash_um > MOTION.z_backlash_um
+        z_now = 0.0
+        for z_target in [1500.0, 1400.0, 1450.0, 1449.0, 1000.0, 2990.0, 2985.0, 12.0]:
+            mark = len(r.emulator.received)
+            await r.driver.move_to(z_um=z_target)
+            zs = z_lines(r.sent(mark))
+            assert zs[-1] == pytest.approx(z_target, abs=0.05)
+            if z_target < z_now:
+                # Down: first below the target by more than the backlash (or to z_min), then up.
+                assert len(zs) == 2
+                assert zs[0] == pytest.approx(max(FOCUS.z_min_um, z_target - overshoot), abs=0.05)
+            else:
+                assert len(zs) == 1
+            # With the play taken up from below the mechanics sit exactly at the target.
+            assert r.emulator.physical_position().z_um == pytest.approx(z_target, abs=0.051)
+            z_now = z_target
+        all_z = z_lines(r.sent())
+        assert max(all_z) <= FOCUS.z_safe_max_um and min(all_z) >= FOCUS.z_min_um
+
+
+async def test_approach_near_z_min_is_clamped_at_the_limit():
+    async with rig() as r:
+        await r.driver.move_to(z_um=100.0)
+        mark = len(r.emulator.received)
+        await r.driver.move_to(z_um=5.0)
+        assert z_lines(r.sent(mark)) == [pytest.approx(0.0), pytest.approx(5.0)]
+
+
+async def test_soft_limits_refuse_before_anything_is_sent():
+    async with rig() as r:
+        await r.driver.move_to(50000.0, 40000.0, 1500.0)
+        mark = len(r.emulator.received)
+        with pytest.raises(LimitError, match=r"z 3100\.0 um .*above the focus safe limit z_safe_max_um = 3000\.0 um .*hw_profiles/sim\.toml"):
+            await r.driver.move_to(z_um=3100.0)
+        with pytest.raises(LimitError, match=r"z_safe_max_um"):
+            await r.driver.move_by(dz_um=1500.1)
+        with pytest.raises(LimitError, match=r"x -1\.0 um .*below the stage soft limit x_min_um = 0\.0 um"):
+            await r.driver.move_to(x_um=-1.0)
+        with pytest.raises(LimitError, match=r"y_max_um = 85480\.0 um"):
+            await r.driver.move_to(y_um=90000.0)
+        with pytest.raises(LimitError, match="not a finite number"):
+            await r.driver.move_to(z_um=float("nan"))
+        with pytest.raises(LimitError, match="z_min_um"):
+            await r.driver.move_to(z_um=-0.5)
+        assert r.sent(mark) == []
+        assert r.emulator.physical_position() == Position(50000.0, 40000.0, 1500.0)
+        assert await r.driver.position() == Position(50000.0, 40000.0, 1500.0)
+
+
+async def test_lamp_uses_the_configured_pwm_output():
+    async with rig(lamp=dataclasses.replace(LAMP, channel=3)) as r:
+        await r.driver.set_lamp(True, 0.5)
+        assert r.emulator.lamp_level(3) == pytest.approx(128 / 255)
+        await r.driver.set_lamp(True)
+        assert r.emulator.lamp_level(3) == 1.0
+        await r.driver.set_lamp(False)
+        assert r.emulator.lamp_level(3) == 0.0
+        assert [line for line in r.sent() if line.startswith("M10")] == ["M106 P3 S128", "M106 P3 S255", "M107 P3"]
+        with pytest.raises(ValueError):
+            await r.driver.set_lamp(True, 1.5)
+
+
+async def test_always_on_lamp_sends_nothing():
+    async with rig(lamp=dataclasses.replace(LAMP, control="always_on")) as r:
+        mark = len(r.emulator.received)
+        await r.driver.set_lamp(True, 0.7)
+        await r.driver.set_lamp(False)
+        assert r.sent(mark) == []
+
+
+async def test_unknown_command_error_reply_is_raised_with_its_text():
+    async with rig() as r:
+        with pytest.raises(MotionError, match=r"controller refused 'M42 P3': unknown command 'M42'"):
+            await r.driver.send_raw("M42 P3")
+        assert await r.driver.position() == HOME  # still in step with the controller
+        mark = len(r.emulator.received)
+        for sneaky in ("G1 Z5", "g0 x1", "N7 G1 Z2.9*31"):
+            with pytest.raises(MotionError, match="refuses motion commands"):
+                await r.driver.send_raw(sneaky)
+        assert r.sent(mark) == []
+
+
+async def test_fault_reset_mid_move_leaves_position_unknown_until_homed():
+    async with rig(speed=20.0) as r:
+        move = asyncio.create_task(r.driver.move_to(x_um=100000.0))  # 12.7 s on the clock
+        assert await asyncio.to_thread(wait_until, lambda: r.sent()[-1:] == ["M400"])
+        await asyncio.sleep(0.1)
+        r.emulator.inject("reset")
+        with pytest.raises(PositionUnknownError, match="restarted"):
+            await move
+        stopped = r.emulator.physical_position()
+        assert 0.0 < stopped.x_um < 100000.0
+        with pytest.raises(PositionUnknownError, match="home the stage"):
+            await r.driver.position()
+        mark = len(r.emulator.received)
+        with pytest.raises(PositionUnknownError):
+            await r.driver.move_to(x_um=50000.0)
+        assert not any(line.startswith("G1") for line in r.sent(mark))
+        await r.driver.home()
+        assert await r.driver.position() == HOME
+        assert r.emulator.physical_position() == HOME
+
+
+async def test_fault_reset_while_idle_is_noticed():
+    async with rig() as r:
+        await r.driver.move_to(x_um=3000.0)
+        r.emulator.inject("reset")
+        await asyncio.sleep(0.05)
+        with pytest.raises(PositionUnknownError, match="restarted"):
+            await r.driver.position()
+        assert "start" in str(r.driver.describe()["boot_banner"])
+
+
+async def test_fault_disconnect_gives_a_clear_error_then_reconnects():
+    async with rig() as r:
+        await r.driver.move_to(x_um=2000.0)
+        r.emulator.inject("disconnect")
+        with pytest.raises(MotionError, match=r"lost the serial link|not found; is the controller plugged in"):
+            await r.driver.position()
+        # Still unplugged: the back-off gives up with the missing-port message.
+        with pytest.raises(MotionError, match=r"not found; is the controller plugged in\? check `port` in \[stage\].*gave up"):
+            await r.driver.position()
+        assert r.driver.describe()["connected"] is False
+        r.emulator.reconnect()
+        with pytest.raises(PositionUnknownError, match="reopened"):
+            await r.driver.position()
+        assert r.driver.describe()["connected"] is True
+        await r.driver.home()
+        assert await r.driver.move_to(x_um=1000.0) == Position(1000.0, 0.0, 0.0)
+
+
+async def test_fault_garbled_reply():
+    async with rig() as r:
+        await r.driver.move_to(x_um=4000.0)
+        r.emulator.inject("garble")
+        with pytest.raises(MotionError, match=r"unreadable reply .* to 'M114'; check that baud = 115200"):
+            await r.driver.position()
+        # Position queries are harmless: the driver re-synchronises and carries on.
+        assert await r.driver.position() == Position(4000.0, 0.0, 0.0)
+        # A garbled acknowledgement of a move leaves its outcome unknown.
+        r.emulator.inject("garble")
+        with pytest.raises(MotionError, match="unreadable reply"):
+            await r.driver.move_to(x_um=6000.0)
+        with pytest.raises(PositionUnknownError, match="unreadable"):
+            await r.driver.position()
+        await r.driver.home()
+        assert await r.driver.position() == HOME
+
+
+async def test_fault_missing_reply_times_out():
+    async with rig(stage_section=stage(reply_timeout_s=0.3)) as r:
+        r.emulator.inject("drop_reply")
+        started = time.monotonic()
+        with pytest.raises(MotionError, match=r"no reply to 'M106 P0 S255' .* within 0\.3 s"):
+            await r.driver.set_lamp(True)
+        assert time.monotonic() - started >= 0.3
+        await r.driver.set_lamp(True)
+        assert r.emulator.lamp_level(0) == 1.0
+        assert await r.driver.position() == HOME  # not a motion command: position kept
+        # A lost acknowledgement of a move: its outcome is unknown.
+        r.emulator.inject("drop_reply")
+        with pytest.raises(MotionError, match="no reply to 'G1"):
+            await r.driver.move_to(y_um=500.0)
+        with pytest.raises(PositionUnknownError):
+            await r.driver.position()
+
+
+async def test_fault_stall_times_out_and_stops_the_move():
+    section = stage(reply_timeout_s=0.3, move_timeout_s=5.0)
+    async with rig(speed=20.0, stage_section=section) as r:
+        r.emulator.inject("stall")
+        started = time.monotonic()
+        with pytest.raises(MotionError, match=r"did not finish within move_timeout_s = 5 s; stopped it with M112"):
+            await r.driver.move_to(x_um=10000.0)  # 1.45 s on the clock when it runs
+        # 5 s on a clock 20x fast, plus the link allowance.
+        assert time.monotonic() - started >= 5.0 / 20.0 + 0.3
+        assert "M112" in r.sent()
+        assert r.driver.describe()["halted"]
+        assert r.emulator.physical_position().x_um == pytest.approx(5000.0, abs=0.5)
+        with pytest.raises(PositionUnknownError):
+            await r.driver.position()
+        await r.driver.home()
+        assert "M999" in r.sent()
+        assert await r.driver.move_to(x_um=10000.0) == Position(10000.0, 0.0, 0.0)
+        assert r.emulator.physical_position().x_um == pytest.approx(10000.0)
+
+
+async def test_halt_reply_is_an_error_until_homed():
+    async with rig() as r:
+        with pytest.raises(MotionError, match=r"halted \(emergency stop"):
+            await r.driver.send_raw("M112")
+        with pytest.raises(MotionError, match="halted"):
+            await r.driver.set_lamp(True)
+        with pytest.raises(PositionUnknownError, match="halted"):
+            await r.driver.move_to(x_um=1000.0)
+        await r.driver.home()
+        await r.driver.set_lamp(True)
+        assert await r.driver.move_to(x_um=1000.0) == Position(1000.0, 0.0, 0.0)
+
+
+async def test_missing_port_message():
+    clock = ScaledClock(speed=1.0)
+    driver = GcodeController(
+        "/dev/ttyPHASEWATCH-missing", baud=115200, stage=stage(), focus=FOCUS, illumination=LAMP, clock=clock
+    )
+    with pytest.raises(MotionError) as caught:
+        await driver.connect()
+    assert str(caught.value) == (
+        "serial port /dev/ttyPHASEWATCH-missing not found; is the controller plugged in? check `port` in [stage]"
+    )
+
+
+async def test_a_plain_file_is_not_a_serial_port(tmp_path):
+    not_a_port = tmp_path / "ttyUSB0"
+    not_a_port.write_text("")
+    driver = GcodeController(
+        str(not_a_port), baud=115200, stage=stage(), focus=FOCUS, illumination=LAMP, clock=ScaledClock()
+    )
+    with pytest.raises(MotionError, match="is not a serial port"):
+        await driver.connect()
+
+
+async def test_a_silent_port_gives_no_reply_error():
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    try:
+        driver = GcodeController(
+            os.ttyname(slave), baud=115200, stage=stage(reply_timeout_s=0.1), focus=FOCUS,
+            illumination=LAMP, clock=ScaledClock(),
+        )
+        with pytest.raises(MotionError, match=r"no reply from the controller .* within 0\.1 s .*3 tries"):
+            await driver.connect()
+        assert driver.describe()["connected"] is False
+    finally:
+        os.close(master)
+        os.close(slave)
+
+
+async def test_garbage_on_connect_points_at_the_baud_rate():
+    clock = ScaledClock(speed=50.0)
+    emulator = GcodeEmulator(clock=clock, stage=stage(), focus=FOCUS, motion=MOTION)
+    port = emulator.start()
+    emulator.inject("garble")
+    driver = GcodeController(port, baud=115200, stage=stage(), focus=FOCUS, illumination=LAMP, clock=clock)
+    try:
+        with pytest.raises(MotionError, match="unreadable reply .* baud = 115200"):
+            await driver.connect()
+    finally:
+        await driver.close()
+        emulator.stop()
+
+
+async def test_board_that_restarts_when_the_port_opens():
+    # Such a board swallows the first probe while booting, then prints its banner.
+    clock = ScaledClock(speed=50.0)
+    section = stage(reply_timeout_s=0.5)
+    emulator = GcodeEmulator(clock=clock, stage=section, focus=FOCUS, motion=MOTION)
+    port = emulator.start()
+    emulator.inject("drop_reply")
+
+    def boot_when_probed() -> None:
+        if wait_until(lambda: any(line == "M114" for _, line in emulator.received)):
+            emulator.inject("reset")
+
+    booter = threading.Thread(target=boot_when_probed)
+    booter.start()
+    driver = GcodeController(port, baud=115200, stage=section, focus=FOCUS, illumination=LAMP, clock=clock)
+    try:
+        await driver.connect()
+        booter.join()
+        info = driver.describe()
+        assert str(info["boot_banner"]).startswith("start / echo:phasewatch")
+        assert info["connected"] is True and info["position_um"] is None
+        assert [line for _, line in emulator.received].count("M114") >= 2
+        await driver.home()
+        assert await driver.position() == HOME
+    finally:
+        booter.join()
+        await driver.close()
+        emulator.stop()
+
+
+async def test_boot_wait_ends_early_after_the_banner():
+    clock = ScaledClock(speed=50.0)
+    emulator = GcodeEmulator(clock=clock, stage=stage(), focus=FOCUS, motion=MOTION)
+    port = emulator.start()
+    driver = GcodeController(
+        port, baud=115200, stage=stage(), focus=FOCUS, illumination=LAMP, clock=clock, boot_wait_s=3.0
+    )
+    timer = threading.Timer(0.1, emulator.inject, args=("reset",))
+    try:
+        started = time.monotonic()
+        timer.start()
+        await driver.connect()
+        # Banner after 0.1 s, then 0.2 s of quiet: far less than the 3 s allowed.
+        assert time.monotonic() - started < 1.5
+        assert str(driver.describe()["boot_banner"]).startswith("start")
+        assert emulator.received[0][1] == "M114"  # nothing was sent during the boot
+    finally:
+        timer.cancel()
+        await driver.close()
+        emulator.stop()
+
+
+async def test_a_second_owner_of_the_port_is_refused():
+    async with rig(home=False) as r:
+        second = GcodeController(
+            r.emulator.link_path, baud=115200, stage=stage(), focus=FOCUS, illumination=LAMP, clock=r.clock
+        )
+        with pytest.raises(MotionError, match="is in use by another program"):
+            await second.connect()
+        assert r.driver.describe()["connected"] is True
