@@ -1,0 +1,361 @@
+"""``phasewatch calibrate dark|flat|retro|list``: dark and flat calibration frames.
+
+    phasewatch calibrate dark  --profile P --data DIR [--frames N] [--exposure-ms E] [--gain-db G]
+    phasewatch calibrate flat  --profile P --data DIR [--frames N] [--exposure-ms E] [--defocus-um D]
+    phasewatch calibrate retro --profile P --data DIR FRAMES_OR_FOLDERS...
+    phasewatch calibrate list  --profile P --data DIR
+
+A flat is measured against the dark of the same exposure and gain, so take the dark
+first. ``flat`` images the field under the objective (on the simulated scope: the centre
+of its empty well) and ``--check`` then measures how even a corrected blank field is.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import math
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy import ndimage
+
+from daemon.commands.common import add_profile_options, print_json, truth_beside
+from daemon.hardware import build_scope
+from daemon.illumination import CalibrationError
+from daemon.illumination.calibration import (
+    EXPOSURE_TOLERANCE,
+    GAIN_TOLERANCE_DB,
+    CalibrationStore,
+    acquire_dark,
+    acquire_flat,
+    check_blank_field,
+)
+from daemon.illumination.inputs import expand_paths, read_input
+from daemon.illumination.retrospective import RetrospectiveFlatBuilder
+from daemon.profile import Profile, load_profile
+from daemon.scope import Scope
+
+EXIT_CALIBRATION = 2
+
+
+def stderr_progress(prefix: str) -> Any:
+    """A ``progress(done, total, message)`` that keeps one updating line on a terminal and
+    prints about ten lines otherwise (logs, pipes)."""
+    tty = sys.stderr.isatty()
+    last_shown = [-1]
+
+    def show(done: int, total: int, message: str) -> None:
+        pct = int(100 * done / max(total, 1))
+        if tty:
+            end = "\n" if done >= total else ""
+            sys.stderr.write(f"\r\x1b[K{prefix}: {pct:3d} % ({done}/{total}) {message}{end}")
+        elif pct // 10 != last_shown[0] // 10 or done >= total:
+            sys.stderr.write(f"{prefix}: {pct:3d} % ({done}/{total}) {message}\n")
+        last_shown[0] = pct
+        sys.stderr.flush()
+
+    return show
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("calibrate", help="take dark and flat calibration frames, or list them")
+    actions = p.add_subparsers(dest="what", metavar="WHAT", required=True)
+
+    def common(q: argparse.ArgumentParser, *, scope_options: bool = True) -> None:
+        add_profile_options(q, data=True)
+        q.add_argument("--json", action="store_true", help="print the result as JSON")
+        if scope_options:
+            q.add_argument("--frames", type=int, default=32, help="frames averaged (default 32)")
+            q.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: profile)")
+            q.add_argument("--gain-db", type=float, default=None, help="gain (default: profile)")
+
+    q = actions.add_parser("dark", help="average frames with the lamp off")
+    common(q)
+    q.set_defaults(func=run_dark)
+
+    q = actions.add_parser("flat", help="average frames of a blank field (needs the dark of the same setting)")
+    common(q)
+    q.add_argument("--x-um", type=float, default=None, help="stage x of the blank field (default: here; sim: the empty well)")
+    q.add_argument("--y-um", type=float, default=None, help="stage y of the blank field")
+    q.add_argument("--defocus-um", type=float, default=None, help="defocus this far first, so structure washes out")
+    q.add_argument("--check", type=int, default=0, metavar="N",
+                   help="then take N more frames and report the blank field's non-uniformity before and after correction")
+    q.set_defaults(func=run_flat)
+
+    q = actions.add_parser("retro", help="estimate a flat from saved frames of many positions (no blank field needed)")
+    common(q, scope_options=False)
+    q.add_argument("inputs", nargs="+", type=Path, help="TIFF frames or folders of them (raw frames of a time-lapse)")
+    q.add_argument("--exposure-ms", type=float, default=None, help="exposure of the frames (default: from their metadata)")
+    q.add_argument("--gain-db", type=float, default=None, help="gain of the frames (default: from their metadata, else profile)")
+    q.add_argument("--block-px", type=int, default=8, help="block size of the per-position medians (default 8)")
+    q.add_argument("--degree", type=int, default=4, help="degree of the fitted shading surface (default 4)")
+    q.set_defaults(func=run_retro)
+
+    q = actions.add_parser("list", help="list the stored calibration frames of a profile")
+    common(q, scope_options=False)
+    q.set_defaults(func=run_list)
+
+
+def _setting(profile: Profile, args: argparse.Namespace) -> tuple[float, float]:
+    exposure = args.exposure_ms if args.exposure_ms is not None else profile.camera.exposure_ms
+    gain = args.gain_db if args.gain_db is not None else profile.camera.gain_db
+    if not exposure > 0:
+        raise CalibrationError(f"--exposure-ms must be > 0, got {exposure:g}")
+    return exposure, gain
+
+
+def _fail(exc: CalibrationError) -> int:
+    print(f"phasewatch: {exc}", file=sys.stderr)
+    return EXIT_CALIBRATION
+
+
+def _sensor_truth(scope: Scope) -> dict[str, Any] | None:
+    if scope.sim is None:
+        return None
+    truth = getattr(scope.sim.world, "sensor_truth", None)
+    return dict(truth) if truth else None
+
+
+def _true_dark_dn(truth: dict[str, Any] | None, exposure_ms: float, gain_db: float) -> float | None:
+    """The simulator's mean dark level: black level plus K × dark current × exposure."""
+    if not truth:
+        return None
+    try:
+        k = float(truth["system_gain_dn_per_e"]) * 10 ** ((gain_db - float(truth.get("gain_db", 0.0))) / 20.0)
+        return float(truth["dark_offset_dn"]) + k * float(truth["dark_current_e_per_s"]) * exposure_ms / 1000.0
+    except (KeyError, TypeError, ValueError):
+        return None
+
+
+def _open_scope(profile: Profile, args: argparse.Namespace) -> Scope:
+    args.data.mkdir(parents=True, exist_ok=True)
+    return build_scope(profile, sim_speed=args.sim_speed, data_dir=args.data)
+
+
+def _emit(args: argparse.Namespace, report: dict[str, Any], lines: list[str]) -> None:
+    if args.json:
+        print_json(report)
+    else:
+        print("\n".join(lines))
+
+
+async def run_dark(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    store = CalibrationStore(args.data / "calibration")
+    try:
+        exposure, gain = _setting(profile, args)
+        scope = _open_scope(profile, args)
+        async with scope, scope.claim("dark calibration"):
+            dark = await acquire_dark(
+                scope, frames=args.frames, exposure_ms=exposure, gain_db=gain,
+                progress=stderr_progress("dark frames"),
+            )
+            t_s = scope.clock.now()
+            truth = _true_dark_dn(_sensor_truth(scope), exposure, gain)
+        path = await asyncio.to_thread(
+            store.save_dark, profile, dark, exposure_ms=exposure, gain_db=gain, frames=args.frames,
+            bit_depth=profile.camera.bit_depth, acquired_t_s=t_s,
+        )
+    except CalibrationError as exc:
+        return _fail(exc)
+    mean = float(dark.mean())
+    report = {
+        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": args.frames,
+        "mean_dn": mean, "std_dn": float(dark.std()), "simulator_mean_dn": truth,
+    }
+    _emit(args, report, [
+        f"saved dark frame {path} ({args.frames} frames, {exposure:g} ms, {gain:g} dB)",
+        f"  mean {truth_beside(mean, truth, 'DN')}, spatial std {dark.std():.2f} DN",
+    ])
+    return 0
+
+
+async def _move_to_blank(scope: Scope, args: argparse.Namespace) -> str:
+    if args.x_um is not None or args.y_um is not None:
+        await scope.move_to(x_um=args.x_um, y_um=args.y_um)
+        return f"x {args.x_um} um, y {args.y_um} um"
+    sim = scope.profile.sim
+    if scope.sim is not None and sim is not None and sim.plate.empty_wells:
+        well = sim.plate.empty_wells[0]
+        x, y = scope.sim.world.well_centre_um(well)
+        await scope.move_to(x_um=x, y_um=y)
+        return f"empty well {well} of the simulated plate"
+    pos = await scope.position()
+    return f"the field under the objective (x {pos.x_um:.0f} um, y {pos.y_um:.0f} um); it must be blank"
+
+
+def _illumination_truth_error(scope: Scope, flat: np.ndarray, dark: np.ndarray) -> float | None:
+    """RMS of (measured shading − simulator's illumination map), both with mean 1. The
+    measured shading is smoothed over 7 px first: the map holds the light, the flat also
+    the sensor's pixel-to-pixel response (PRNU), which is not an error of the flat."""
+    if scope.sim is None or not hasattr(scope.sim.world, "illumination_map"):
+        return None
+    truth = np.asarray(scope.sim.world.illumination_map(), dtype=np.float64)
+    if truth.shape != flat.shape:
+        return None
+    shading = ndimage.uniform_filter(flat.astype(np.float64) - dark, size=7, mode="nearest")
+    return float(np.sqrt(np.mean((shading / shading.mean() - truth / truth.mean()) ** 2)))
+
+
+async def run_flat(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    store = CalibrationStore(args.data / "calibration")
+    try:
+        exposure, gain = _setting(profile, args)
+        found_dark = await asyncio.to_thread(store.find_dark, profile, exposure, gain)
+        if found_dark is None:
+            raise CalibrationError(store.describe_missing(profile, exposure, gain))
+        dark, _ = found_dark
+        scope = _open_scope(profile, args)
+        async with scope, scope.claim("flat calibration"):
+            where = await _move_to_blank(scope, args)
+            print(f"flat field: {where}", file=sys.stderr)
+            flat = await acquire_flat(
+                scope, frames=args.frames, exposure_ms=exposure, gain_db=gain, defocus_um=args.defocus_um,
+                progress=stderr_progress("flat frames"),
+            )
+            t_s = scope.clock.now()
+            pos = await scope.position()
+            truth_err = _illumination_truth_error(scope, flat, dark)
+            method = "blank field, averaged" + (f", defocused {args.defocus_um:g} um" if args.defocus_um else "")
+            path = await asyncio.to_thread(
+                store.save_flat, profile, flat, exposure_ms=exposure, gain_db=gain, frames=args.frames,
+                bit_depth=profile.camera.bit_depth, method=method, acquired_t_s=t_s,
+                extra={"position_um": {"x": pos.x_um, "y": pos.y_um, "z": pos.z_um}, "where": where},
+            )
+            check = None
+            if args.check:
+                corrector = store.require(profile, exposure, gain).corrector()
+                check = await check_blank_field(
+                    scope, corrector, dark, frames=args.check, exposure_ms=exposure, gain_db=gain,
+                    progress=stderr_progress("check frames"),
+                )
+    except CalibrationError as exc:
+        return _fail(exc)
+    meta = store.find(profile, exposure, gain)
+    quality = meta.flat_meta["quality"] if meta else {}
+    report: dict[str, Any] = {
+        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": args.frames, "where": where,
+        "quality": quality, "simulator_illumination_rms_error": truth_err, "check": check,
+    }
+    lines = [
+        f"saved flat {path} ({args.frames} frames, {exposure:g} ms, {gain:g} dB)",
+        f"  signal above dark {quality.get('response_mean_dn', float('nan')):.1f} DN; shading "
+        f"{quality.get('shading_std_fraction', float('nan')) * 100:.1f} % std, "
+        f"{quality.get('shading_range_fraction', float('nan')) * 100:.0f} % from darkest to brightest",
+        f"  small-scale non-uniformity {quality.get('small_scale_nonuniformity', float('nan')) * 100:.2f} %",
+    ]
+    if truth_err is not None:
+        lines.append(f"  shading against the simulator's illumination map: {truth_err * 100:.2f} % RMS")
+    lines += [f"  warning: {w}" for w in quality.get("warnings", [])]
+    if check:
+        lines.append(
+            f"  blank field non-uniformity (noise removed, {args.check} frames): "
+            f"{check['before_fraction'] * 100:.2f} % before correction, {check['after_fraction'] * 100:.2f} % after"
+        )
+    _emit(args, report, lines)
+    return 0
+
+
+def _consistent(values: list[tuple[Path, float | None]], given: float | None, what: str, unit: str,
+                tolerance: float, relative: bool) -> float | None:
+    known = [(p, v) for p, v in values if v is not None and math.isfinite(v)]
+    if given is not None:
+        return given
+    if not known:
+        return None
+    ref_path, ref = known[0]
+    for p, v in known[1:]:
+        off = abs(v - ref) / max(abs(ref), 1e-9) if relative else abs(v - ref)
+        if off > tolerance:
+            raise CalibrationError(
+                f"mismatched {what}s: {ref_path.name} {ref:g} {unit} but {p.name} {v:g} {unit}; "
+                f"a flat belongs to one {what}, give frames of one setting"
+            )
+    return ref
+
+
+async def run_retro(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    store = CalibrationStore(args.data / "calibration")
+    try:
+        paths = expand_paths(args.inputs)
+        frames = [await asyncio.to_thread(read_input, p) for p in paths]
+        raw = [f for f in frames if f.kind != "corrected"]
+        skipped = len(frames) - len(raw)
+        exposure = _consistent([(f.path, f.exposure_ms) for f in raw], args.exposure_ms, "exposure", "ms",
+                               EXPOSURE_TOLERANCE, True)
+        gain = _consistent([(f.path, f.gain_db) for f in raw], args.gain_db, "gain", "dB", GAIN_TOLERANCE_DB, False)
+        exposure = exposure if exposure is not None else profile.camera.exposure_ms
+        gain = gain if gain is not None else profile.camera.gain_db
+        found_dark = await asyncio.to_thread(store.find_dark, profile, exposure, gain)
+        if found_dark is None:
+            raise CalibrationError(store.describe_missing(profile, exposure, gain))
+        dark, _ = found_dark
+        positions = {f.position for f in raw if f.position is not None}
+        builder = RetrospectiveFlatBuilder(dark, block_px=args.block_px, degree=args.degree)
+        for f in raw:
+            await asyncio.to_thread(builder.add, f.pixels)
+        if len(positions) and len(positions) < min(len(raw), 6):
+            raise CalibrationError(
+                f"the {len(raw)} frames come from only {len(positions)} stage positions; a retrospective flat "
+                "needs frames from many different positions"
+            )
+        result = await asyncio.to_thread(builder.result)
+        path = await asyncio.to_thread(
+            store.save_flat, profile, result.flat, exposure_ms=exposure, gain_db=gain, frames=result.frames,
+            bit_depth=profile.camera.bit_depth, method="retrospective (median of positions, fitted surface)",
+            extra={"retrospective": result.quality(), "sources": [str(f.path) for f in raw[:2000]]},
+        )
+    except CalibrationError as exc:
+        return _fail(exc)
+    truth_err = _retro_truth_error(profile, result.shape)
+    report = {
+        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": result.frames,
+        "skipped_corrected": skipped, **result.quality(), "simulator_illumination_rms_error": truth_err,
+    }
+    lines = [
+        f"saved retrospective flat {path} from {result.frames} frames ({exposure:g} ms, {gain:g} dB)",
+        f"  expected error {result.error_estimate_fraction * 100:.2f} % RMS (random {result.uncertainty_fraction * 100:.2f} %, "
+        f"systematic {result.systematic_fraction * 100:.2f} %); shading range {result.shading_range_fraction * 100:.0f} %",
+    ]
+    if truth_err is not None:
+        lines.append(f"  against the simulator's illumination map: {truth_err * 100:.2f} % RMS")
+    if skipped:
+        lines.append(f"  skipped {skipped} corrected frames (a flat is estimated from raw frames)")
+    _emit(args, report, lines)
+    return 0
+
+
+def _retro_truth_error(profile: Profile, shape: np.ndarray) -> float | None:
+    if profile.sim is None:
+        return None
+    try:
+        from drivers.sim.world import SimWorld
+    except ImportError:
+        return None
+    truth = np.asarray(SimWorld(profile).illumination_map(), dtype=np.float64)
+    if truth.shape != shape.shape:
+        return None
+    return float(np.sqrt(np.mean((shape / shape.mean() - truth / truth.mean()) ** 2)))
+
+
+async def run_list(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    store = CalibrationStore(args.data / "calibration")
+    rows = store.list_sets(profile)
+    if args.json:
+        print_json(rows)
+        return 0
+    if not rows:
+        print(f"no calibration frames for profile {profile.name} under {store.root}")
+        return 0
+    for r in rows:
+        print(
+            f"{r['kind']:<5} {r['objective']:<16} {r['exposure_ms']:>9.3f} ms {r['gain_db']:>6.2f} dB "
+            f"{r.get('frames_averaged', '?'):>4} frames  {r.get('acquired_utc') or '-':<32} {r.get('method', '')}"
+        )
+    return 0
