@@ -112,6 +112,9 @@ class FocusSection:
     z_accel_um_s2: float = option(5000.0, doc="focus acceleration", min=1.0, max=1e6, unit="um/s^2")
     backlash_um: float = option(10.0, doc="focus backlash; every final approach is made from below by more than this", min=0.0, max=1000.0, unit="um")
     settle_ms: float = option(30.0, doc="wait after a focus move before exposing", min=0.0, max=10000.0, unit="ms")
+    nominal_z_um: float | None = option(
+        None, doc="focus position where the vessel bottom is usually in focus: a cold autofocus searches around it after homing", unit="um"
+    )
 
     def __post_init__(self) -> None:
         if self.z_min_um >= self.z_safe_max_um:

@@ -30,7 +30,7 @@ class SimCulture:
     doubling_time_h: float = option(22.0, doc="doubling time in the exponential phase", min=1.0, max=1000.0, unit="h")
     max_confluence: float = option(0.95, doc="confluence the logistic growth levels off at", min=0.05, max=1.0)
     cell_diameter_um: float = option(30.0, doc="mean diameter of a spread cell", min=2.0, max=300.0, unit="um")
-    cell_elongation: float = option(1.8, doc="mean length-to-width ratio of a cell", min=1.0, max=6.0)
+    cell_elongation: float = option(2.4, doc="mean length-to-width ratio of a cell", min=1.0, max=6.0)
     nucleus_diameter_um: float = option(11.0, doc="mean nucleus diameter", min=1.0, max=100.0, unit="um")
     cell_thickness_um: float = option(3.0, doc="thickness of the cytoplasm", min=0.1, max=30.0, unit="um")
     nucleus_thickness_um: float = option(5.0, doc="thickness over the nucleus", min=0.1, max=40.0, unit="um")
@@ -59,8 +59,16 @@ class SimSensor:
     """EMVA 1288 linear camera model constants (the truth characterisation must recover)."""
 
     quantum_efficiency: float = option(0.6, doc="photons to electrons", min=0.01, max=1.0)
-    photons_per_px_ms: float = option(180.0, doc="photons per pixel per ms at the field centre, lamp at full level", min=0.0, max=1e7)
-    system_gain_dn_per_e: float = option(0.08, doc="overall system gain K at 0 dB", min=1e-4, max=100.0, unit="DN/e-")
+    photons_per_px_ms: float = option(
+        1700.0,
+        doc="photons per pixel per ms at the field centre, lamp at full level, before the phase ring "
+        "(an empty field passes tau^2 of them)",
+        min=0.0,
+        max=1e7,
+    )
+    system_gain_dn_per_e: float = option(
+        0.021, doc="overall system gain K at 0 dB, in DN of the camera's bit depth", min=1e-4, max=100.0, unit="DN/e-"
+    )
     read_noise_e: float = option(6.0, doc="temporal dark noise", min=0.0, max=1000.0, unit="e-")
     dark_current_e_per_s: float = option(40.0, doc="dark current", min=0.0, max=1e6, unit="e-/s")
     dark_offset_dn: float = option(8.0, doc="black level added before quantisation", min=0.0, max=4096.0, unit="DN")
@@ -80,13 +88,39 @@ class SimIllumination:
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class SimMotion:
     z_backlash_um: float = option(6.0, doc="true backlash of the simulated focus drive", min=0.0, max=500.0, unit="um")
+    travel_margin_um: float = option(
+        2000.0, doc="mechanical travel beyond the profile's soft limits (x, y, and z below z_min_um)", min=0.0, max=100000.0, unit="um"
+    )
+    z_crash_margin_um: float = option(
+        200.0, doc="focus travel above z_safe_max_um before the objective hits the vessel (hard limit)", min=0.0, max=10000.0, unit="um"
+    )
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class SimOptics:
+    """How the simulated phase-contrast optics are built (see drivers/sim/optics.py)."""
+
     ring_width_fraction: float = option(
-        0.08, doc="radius of the phase ring's footprint in the pupil, fraction of NA/λ (sets halo width)", min=0.001, max=0.5
+        0.08,
+        doc="half-width of the phase ring's footprint in the pupil, fraction of NA/λ (sets halo width); "
+        "with on-axis light the radius of the ring's disc",
+        min=0.001,
+        max=0.5,
     )
+    annulus_fraction: float = option(
+        0.6,
+        doc="radius of the condenser annulus (and of the phase ring it is imaged onto) in the pupil, fraction of NA/λ; "
+        "0 = on-axis light",
+        min=0.0,
+        max=0.95,
+    )
+    illumination_angles: int = option(
+        8, doc="illumination directions sampled on the condenser annulus (summed incoherently)", min=1, max=64
+    )
+    annulus_width_fraction: float = option(
+        0.8, doc="radial width of the condenser annulus' image, fraction of the phase ring's width", min=0.0, max=1.0
+    )
+    led_bandwidth_nm: float = option(30.0, doc="spectral width of the LED (sampled uniformly)", min=0.0, max=200.0, unit="nm")
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
