@@ -1,0 +1,123 @@
+"""``phasewatch focus``: run one autofocus and print the result and its focus curve."""
+
+from __future__ import annotations
+
+import argparse
+import math
+
+from daemon.commands.common import add_profile_options, print_json, truth_beside
+from daemon.config import ConfigError
+from daemon.focus.autofocus import FocusPoint, FocusResult, autofocus
+from daemon.focus.metrics import METRICS
+from daemon.hardware import build_scope
+from daemon.profile import load_profile
+
+BAR_WIDTH = 40
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "focus", help="run one autofocus and print the focus curve",
+        description="Run one cold autofocus and print the plane, its score and confidence, the frames "
+        "and time it took, and the focus curve (with the simulator's true plane on a simulated scope).",
+        epilog="Exit status: 0 focus found, 1 no focus found (the focus is left at the starting plane), "
+        "2 a bad option or profile.",
+    )
+    add_profile_options(p)
+    p.add_argument("--json", action="store_true", help="print the result as JSON")
+    p.add_argument("--metric", choices=sorted(METRICS), default="variance_of_laplacian", help="focus metric")
+    p.add_argument("--x-um", type=float, default=None, help="stage x to focus at (default: where it is)")
+    p.add_argument("--y-um", type=float, default=None, help="stage y to focus at (default: where it is)")
+    p.add_argument(
+        "--well", default=None,
+        help="simulated scope only: focus at the centre of this well of the simulated plate, e.g. C4",
+    )
+    p.add_argument(
+        "--z-um", type=float, default=None,
+        help="centre of the search (default: the present focus, or the profile's [focus] nominal_z_um "
+        "when the focus is far from it, as after homing)",
+    )
+    p.add_argument("--range-um", type=float, default=None, help="width of the search (default: from the optics)")
+    p.add_argument(
+        "--roi", type=int, nargs=4, metavar=("X", "Y", "W", "H"), default=None,
+        help="score only this region of the frame (pixels)",
+    )
+    p.set_defaults(func=run)
+
+
+def _check_args(args: argparse.Namespace, profile_path: str, width: int, height: int) -> None:
+    if args.range_um is not None and not (args.range_um > 0 and math.isfinite(args.range_um)):
+        raise ConfigError(profile_path, "", "--range-um", f"must be a positive width in um, got {args.range_um}")
+    if args.roi is not None:
+        x, y, w, h = args.roi
+        if w < 3 or h < 3 or x < 0 or y < 0 or x + w > width or y + h > height:
+            raise ConfigError(
+                profile_path, "", "--roi", f"region {x} {y} {w} {h} must lie inside the {width}x{height} px frame, at least 3x3 px"
+            )
+
+
+async def run(args: argparse.Namespace) -> int:
+    profile = load_profile(args.profile)
+    _check_args(args, str(profile.path), profile.camera.width_px, profile.camera.height_px)
+    if args.well is not None and not profile.is_simulated:
+        raise ConfigError(profile.path, "", "--well", "wells are known by name only on the simulated scope; give --x-um and --y-um")
+    scope = build_scope(profile, sim_speed=args.sim_speed)
+    async with scope, scope.claim("autofocus (command line)"):
+        x_um, y_um = args.x_um, args.y_um
+        if args.well is not None and scope.sim is not None:
+            try:
+                x_um, y_um = scope.sim.world.well_centre_um(args.well)
+            except (KeyError, ValueError) as exc:
+                raise ConfigError(profile.path, "", "--well", f"no well {args.well!r} on the simulated plate ({exc})") from None
+        if x_um is not None or y_um is not None:
+            await scope.move_to(x_um=x_um, y_um=y_um)
+        result = await autofocus(
+            scope, metric=args.metric, centre_z_um=args.z_um, range_um=args.range_um,
+            roi=tuple(args.roi) if args.roi else None,
+        )
+        if scope.sim is not None and not result.found:
+            here = await scope.position()
+            if scope.sim.world.well_at(here.x_um, here.y_um) is None:
+                result.message += "; the stage is not over a well of the simulated plate (try --well B3)"
+    if args.json:
+        print_json(result.to_dict())
+    else:
+        print(report(result, depth_of_field_um=profile.optics.depth_of_field_um))
+    return 0 if result.found else 1
+
+
+def report(result: FocusResult, *, depth_of_field_um: float) -> str:
+    lines = [result.message]
+    lines.append(f"  z         {truth_beside(result.z_um, result.true_z_um, 'um')}")
+    if result.true_z_um is not None:
+        err = result.z_um - result.true_z_um
+        lines.append(f"  error     {err:+.2f} um ({abs(err) / depth_of_field_um:.2f} depth of field)")
+    score = "-" if not math.isfinite(result.score) else f"{result.score:.4g}"
+    lines.append(f"  score     {score} ({result.metric})")
+    lines.append(f"  confidence {result.confidence:.2f}")
+    lines.append(f"  frames    {result.frames} in {result.elapsed_s:.2f} s")
+    lines.append("  focus curve (z um, score; in the order taken: #):")
+    lines.extend("  " + row for row in curve_picture(result.curve, result.z_um, result.true_z_um))
+    return "\n".join(lines)
+
+
+def curve_picture(curve: list[FocusPoint], z_um: float | None = None, true_z_um: float | None = None) -> list[str]:
+    """The curve as a bar per frame, sorted by z; '<' marks the chosen plane, '*' the true one."""
+    if not curve:
+        return ["(no frames)"]
+    scores = [p.score for p in curve]
+    lo, hi = min(scores), max(scores)
+    span = hi - lo if hi > lo else 1.0
+    order = sorted(range(len(curve)), key=lambda i: curve[i].z_um)
+    rows = []
+    closest = min(order, key=lambda i: abs(curve[i].z_um - z_um)) if z_um is not None else None
+    zs = [p.z_um for p in curve]
+    truest = None
+    if true_z_um is not None and min(zs) <= true_z_um <= max(zs):
+        truest = min(order, key=lambda i: abs(curve[i].z_um - true_z_um))
+    for i in order:
+        p = curve[i]
+        n = 1 + round((p.score - lo) / span * (BAR_WIDTH - 1))
+        mark = ("<" if i == closest else " ") + ("*" if i == truest else " ")
+        rows.append(f"{p.z_um:9.2f} |{'#' * n:<{BAR_WIDTH}}| {p.score:10.4g} #{i + 1:<3}{mark}")
+    return rows

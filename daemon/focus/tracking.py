@@ -1,0 +1,218 @@
+"""Focus tracking: keeping every position of a time-lapse in focus through thermal drift.
+
+Each position (a ``key``: well and site) keeps the planes it was last found in focus.
+Its next plane is predicted from its own last plane plus the drift trend, the rate at
+which all positions' planes have been moving lately (a warming incubator moves every
+position alike). A position never focused before is predicted from the focus surface
+fitted over the positions focused so far (tilt and sag of the vessel), and searched with
+a short coarse sweep around that prediction, which tells the main focus peak from its
+side lobes. A position seen before gets a bracket of a few frames around the prediction
+(:func:`~daemon.focus.autofocus.refine`); when that shows no peak as high as the
+position's last one, the search widens to a coarse sweep around the prediction, and as
+a last resort to the whole cold range.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import statistics
+from collections.abc import Callable
+from typing import TYPE_CHECKING, Any
+
+from daemon.focus.autofocus import (
+    FocusPlan,
+    FocusPoint,
+    FocusProbe,
+    FocusResult,
+    cold_search,
+    conclude,
+    default_centre_z_um,
+    refine,
+)
+from daemon.focus.surface import SurfaceFit, SurfacePoint, fit_focus_surface
+
+if TYPE_CHECKING:
+    from daemon.profile import Profile
+    from daemon.scope import Scope
+
+HISTORY_PER_KEY = 8
+# The tracking bracket may reach this many depths of field from the prediction (covers a
+# 20 um step of drift at 10x/0.25) before the search widens to a coarse sweep.
+TRACK_REACH_DOF = 4.0
+# A position seen for the first time is predicted from the focus surface only: a short
+# coarse sweep around the prediction tells the main peak from its side lobes.
+NEW_KEY_HALF_RANGE_DOF = 4.0
+WIDEN_HALF_RANGE_DOF = 8.0
+# A tracked peak must keep this share of the position's last peak score; a side lobe of
+# the focus curve (defocused cells) reaches about a quarter of it.
+PEAK_KEEP = 0.5
+# Drift-rate samples older than this many revisit intervals no longer describe the trend.
+TREND_HORIZON_INTERVALS = 2.0
+STATE_VERSION = 1
+
+
+@dataclasses.dataclass
+class KeyState:
+    """What the tracker remembers of one position."""
+
+    x_um: float
+    y_um: float
+    planes: list[tuple[float, float]] = dataclasses.field(default_factory=list)  # (t_s, z_um), found only
+    floor: float | None = None  # focus-score floor of its last full curve
+    peak: float | None = None  # focus score at its last plane
+
+    @property
+    def last(self) -> tuple[float, float] | None:
+        return self.planes[-1] if self.planes else None
+
+    def rate_um_s(self) -> tuple[float, float] | None:
+        """(time of the latest plane, focus rate between its last two planes)."""
+        if len(self.planes) < 2:
+            return None
+        (t0, z0), (t1, z1) = self.planes[-2], self.planes[-1]
+        if t1 <= t0:
+            return None
+        return t1, (z1 - z0) / (t1 - t0)
+
+
+class FocusTracker:
+    """One per time-lapse (or vessel): remembers planes, drift and the focus surface."""
+
+    def __init__(self, profile: Profile) -> None:
+        self.profile = profile
+        self.plan = FocusPlan.for_profile(profile)
+        self.keys: dict[str, KeyState] = {}
+
+    # -- prediction -----------------------------------------------------------------
+
+    def drift_rate_um_s(self, t_s: float) -> float:
+        """The common focus drift rate now: the median over positions of the rate between
+        their last two planes, over positions revisited recently. 0 before any revisit."""
+        samples = [r for k in self.keys.values() if (r := k.rate_um_s()) is not None]
+        if not samples:
+            return 0.0
+        intervals = [k.planes[-1][0] - k.planes[-2][0] for k in self.keys.values() if len(k.planes) >= 2]
+        horizon_s = TREND_HORIZON_INTERVALS * statistics.median(intervals)
+        recent = [rate for t_latest, rate in samples if t_s - t_latest <= horizon_s]
+        return statistics.median(recent) if recent else 0.0
+
+    def surface(self, t_s: float) -> SurfaceFit | None:
+        """The focus surface now: every position's last plane, carried forward by the trend."""
+        rate = self.drift_rate_um_s(t_s)
+        points = [
+            SurfacePoint(k.x_um, k.y_um, k.last[1] + rate * (t_s - k.last[0]))
+            for k in self.keys.values()
+            if k.last is not None
+        ]
+        return fit_focus_surface(points, tolerance_um=self.plan.dof_um)
+
+    def predict_z_um(self, key: str, x_um: float, y_um: float, t_s: float) -> float | None:
+        """Where ``key`` at (x, y) should be in focus at ``t_s``, or None with nothing to go by."""
+        state = self.keys.get(key)
+        rate = self.drift_rate_um_s(t_s)
+        if state is not None and state.last is not None:
+            t_last, z_last = state.last
+            return z_last + rate * (t_s - t_last)
+        fit = self.surface(t_s)
+        return None if fit is None else fit.z_um(x_um, y_um)
+
+    # -- focusing -------------------------------------------------------------------
+
+    async def focus(
+        self,
+        scope: Scope,
+        key: str,
+        x_um: float,
+        y_um: float,
+        *,
+        on_point: Callable[[FocusPoint], None] | None = None,
+        metric: str = "variance_of_laplacian",
+    ) -> FocusResult:
+        """Focus ``key``; the stage is already at (x_um, y_um). Records the plane if found."""
+        plan = self.plan
+        t_s = scope.clock.now()
+        predicted = self.predict_z_um(key, x_um, y_um, t_s)
+        probe = FocusProbe(scope, plan, metric=metric, on_point=on_point)
+        if predicted is None:
+            start = await scope.position()
+            centre = default_centre_z_um(self.profile, plan, start.z_um)
+            lo, hi = plan.clamp(centre - plan.cold_half_range_um), plan.clamp(centre + plan.cold_half_range_um)
+            result = await cold_search(probe, lo, hi, fallback_z_um=start.z_um, fallback_name="starting plane")
+            result.message += " (cold: nothing known yet)"
+            return self.record(key, x_um, y_um, result)
+
+        predicted = plan.clamp(predicted)
+        state = self.keys.get(key)
+        fallback_name = "predicted plane (last good plane moved by the drift trend)"
+        if state is not None and state.planes and state.floor is not None and state.peak is not None:
+            outcome = await refine(probe, predicted, reach_um=TRACK_REACH_DOF * plan.dof_um, floor=state.floor)
+            if not outcome.edge and outcome.best.score >= PEAK_KEEP * state.peak:
+                base = min(state.floor, min(s.score for s in probe.samples))
+                result = await conclude(probe, outcome, fallback_z_um=predicted, fallback_name=fallback_name, floor=base)
+                if result.found:
+                    result.message += " (tracked)"
+                    return self.record(key, x_um, y_um, result)
+            searches = [(WIDEN_HALF_RANGE_DOF * plan.dof_um, "widened search after the tracking bracket found no peak")]
+        else:
+            fallback_name = "predicted plane (from the focus surface)"
+            searches = [(NEW_KEY_HALF_RANGE_DOF * plan.dof_um, "first visit, around the focus surface"),
+                        (WIDEN_HALF_RANGE_DOF * plan.dof_um, "first visit, widened")]
+        searches.append((plan.cold_half_range_um, "cold search around the prediction"))
+        for half_um, label in searches:
+            result = await cold_search(
+                probe, plan.clamp(predicted - half_um), plan.clamp(predicted + half_um),
+                fallback_z_um=predicted, fallback_name=fallback_name,
+            )
+            if result.found:
+                break
+        result.message += f" ({label})"
+        return self.record(key, x_um, y_um, result)
+
+    def record(self, key: str, x_um: float, y_um: float, result: FocusResult) -> FocusResult:
+        """Remember a result (only found planes feed the predictions)."""
+        state = self.keys.setdefault(key, KeyState(x_um, y_um))
+        state.x_um, state.y_um = x_um, y_um
+        if result.found:
+            t_s = result.curve[-1].t_s if result.curve else 0.0
+            state.planes.append((t_s, result.z_um))
+            del state.planes[:-HISTORY_PER_KEY]
+            if math.isfinite(result.score):
+                state.peak = result.score
+            if result.curve and (_spans_floor(result) or state.floor is None):
+                state.floor = result.floor
+        return result
+
+    # -- persistence ----------------------------------------------------------------
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "version": STATE_VERSION,
+            "keys": {
+                key: {"x_um": s.x_um, "y_um": s.y_um, "planes": [list(p) for p in s.planes], "floor": s.floor, "peak": s.peak}
+                for key, s in self.keys.items()
+            },
+        }
+
+    @classmethod
+    def from_dict(cls, profile: Profile, d: dict[str, Any]) -> FocusTracker:
+        if d.get("version") != STATE_VERSION:
+            raise ValueError(f"focus tracker state version {d.get('version')!r} is not {STATE_VERSION}")
+        tracker = cls(profile)
+        for key, s in d.get("keys", {}).items():
+            tracker.keys[key] = KeyState(
+                float(s["x_um"]), float(s["y_um"]),
+                [(float(t), float(z)) for t, z in s.get("planes", [])],
+                None if s.get("floor") is None else float(s["floor"]),
+                None if s.get("peak") is None else float(s["peak"]),
+            )
+        return tracker
+
+
+def _spans_floor(result: FocusResult) -> bool:
+    """Whether the curve reached far enough from its peak (4 fitted widths) for its lowest
+    score to be the floor, not just the flank of the peak."""
+    if not math.isfinite(result.width_um):
+        return False
+    zs = [p.z_um for p in result.curve]
+    return max(zs) - min(zs) >= 4.0 * result.width_um

@@ -1,0 +1,254 @@
+"""Focus benchmark: metric cost, cold autofocus, tracking autofocus, against a naive sweep.
+
+    python -m tests.benchmarks.run focus
+
+Targets (docs: ../shared/PRODUCT.md, Targets): each metric on a 1920x1080 8-bit frame
+within 25x the time of one copy of that frame (same run); cold autofocus on the simulated
+10x/0.25 scope with the start off by up to ±150 um, 50 seeded trials: median <= 15 frames,
+95th-percentile |error| <= d/4 (d = depth of field), no success reported out of focus;
+tracking with drift up to 20 um between time points: median <= 6 frames, same accuracy.
+A naive full sweep at d/4 steps over the same ±150 um is run for the ratio.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+import os
+import statistics
+import time
+from collections.abc import Callable
+
+import numpy as np
+
+from daemon.focus.autofocus import FocusPlan, autofocus, score_frame
+from daemon.focus.metrics import METRICS
+from daemon.focus.tracking import FocusTracker
+from daemon.profile import Profile, load_profile
+from daemon.scope import Scope
+from tests.helpers import sim_scope
+
+FRAME_SHAPE = (1080, 1920)
+COLD_TRIALS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_TRIALS", "50"))
+NAIVE_TRIALS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_NAIVE_TRIALS", "3"))
+TRACK_TIME_POINTS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_TIME_POINTS", "8"))
+TRACK_WELLS = ("B3", "C6", "D9", "E2", "F5", "G11")
+START_ERROR_UM = 150.0
+# Simulated seconds per real second: slow enough that the time spent rendering frames
+# does not let the focal plane drift within one search.
+SIM_SPEED = 10.0
+MIN_COVER = 0.02  # fields with at least 2 % cell cover (simulator truth): an empty field has no focus
+SEED = 20260412
+
+
+def _paired_best_s(fn: Callable[[], object], ref: Callable[[], object], rounds: int = 15, number: int = 20) -> tuple[float, float]:
+    """Best mean time of ``fn`` and of ``ref`` over rounds that alternate the two, so that
+    load from other processes falls on both alike (the ratio is what is judged)."""
+    best_fn = best_ref = float("inf")
+    for _ in range(rounds):
+        t0 = time.perf_counter()
+        for _ in range(number):
+            ref()
+        t1 = time.perf_counter()
+        for _ in range(number):
+            fn()
+        t2 = time.perf_counter()
+        best_ref = min(best_ref, (t1 - t0) / number)
+        best_fn = min(best_fn, (t2 - t1) / number)
+    return best_fn, best_ref
+
+
+def metric_rows() -> list[dict[str, object]]:
+    rng = np.random.default_rng(1)
+    # A textured 8-bit frame: smooth structure plus noise, as a camera gives.
+    y, x = np.mgrid[0 : FRAME_SHAPE[0], 0 : FRAME_SHAPE[1]]
+    frame = np.clip(128 + 40 * np.sin(x / 7.0) * np.cos(y / 11.0) + rng.normal(0, 6, FRAME_SHAPE), 0, 255).astype(np.uint8)
+    rows: list[dict[str, object]] = []
+    copies = []
+    for name, fn in METRICS.items():
+        t, copy_s = _paired_best_s(lambda fn=fn: fn(frame), lambda: frame.copy())
+        copies.append(copy_s)
+        ratio = t / copy_s
+        rows.append({"name": f"{name} / frame copy", "value": ratio, "unit": "x", "target": "<= 25", "ok": ratio <= 25.0})
+        rows.append({"name": f"{name} 1920x1080 u8", "value": t * 1e3, "unit": "ms", "target": "-", "ok": None})
+    rows.insert(0, {"name": "frame copy 1920x1080 u8", "value": min(copies) * 1e3, "unit": "ms", "target": "reference", "ok": None})
+    return rows
+
+
+@dataclasses.dataclass
+class Trial:
+    found: bool
+    frames: int
+    error_um: float
+    elapsed_s: float
+
+
+async def _field_with_cells(scope: Scope, rng: np.random.Generator, wells: list[str]) -> tuple[float, float]:
+    """A random site in a random well that shows cells (at most 40 tries)."""
+    assert scope.sim is not None
+    world = scope.sim.world
+    for _ in range(40):
+        cx, cy = world.well_centre_um(wells[int(rng.integers(len(wells)))])
+        r, a = 2500.0 * np.sqrt(rng.uniform()), rng.uniform(0, 2 * np.pi)
+        x, y = cx + r * np.cos(a), cy + r * np.sin(a)
+        if world.true_confluence(x, y, scope.clock.now()) >= MIN_COVER:
+            return float(x), float(y)
+    raise RuntimeError("no field with cells found; check the sim culture settings")
+
+
+def _wells(profile: Profile) -> list[str]:
+    assert profile.sim is not None
+    plate = profile.sim.plate
+    names = [f"{chr(65 + r)}{c + 1}" for r in range(plate.rows) for c in range(plate.columns)]
+    return [w for w in names if w not in plate.empty_wells]
+
+
+async def _start_trial(scope: Scope, rng: np.random.Generator, wells: list[str]) -> float:
+    """Go to a random field with cells; the start plane: the true one ± up to 150 um."""
+    x, y = await _field_with_cells(scope, rng, wells)
+    await scope.move_to(x_um=x, y_um=y)
+    truth = scope.true_focus_z_um()
+    assert truth is not None
+    return truth + rng.uniform(-START_ERROR_UM, START_ERROR_UM)
+
+
+async def _cold_trials(profile: Profile) -> list[Trial]:
+    rng = np.random.default_rng(SEED)
+    trials = []
+    async with sim_scope(profile, speed=SIM_SPEED) as scope:
+        for _ in range(COLD_TRIALS):
+            await scope.move_to(z_um=await _start_trial(scope, rng, _wells(profile)))
+            r = await autofocus(scope)
+            assert r.true_z_um is not None
+            trials.append(Trial(r.found, r.frames, r.z_um - r.true_z_um, r.elapsed_s))
+    return trials
+
+
+async def _naive_trials(profile: Profile) -> list[Trial]:
+    """The plain way: sweep the whole ±150 um at d/4 steps, go to the sharpest frame."""
+    rng = np.random.default_rng(SEED + 1)
+    plan = FocusPlan.for_profile(profile)
+    metric = METRICS["variance_of_laplacian"]
+    trials = []
+    async with sim_scope(profile, speed=SIM_SPEED) as scope:
+        for _ in range(NAIVE_TRIALS):
+            start = await _start_trial(scope, rng, _wells(profile))
+            t0 = scope.clock.now()
+            best_z, best_score, frames = start, -1.0, 0
+            for z in np.arange(start - START_ERROR_UM, start + START_ERROR_UM + 1e-6, plan.dof_um / 4):
+                frame = await scope.capture_at(float(z))
+                frames += 1
+                score = (await asyncio.to_thread(score_frame, frame.pixels, metric, None, plan, 255.0))[0]
+                if score > best_score:
+                    best_z, best_score = float(z), score
+            await scope.move_to(z_um=best_z)
+            t_true = scope.true_focus_z_um()
+            assert t_true is not None
+            trials.append(Trial(True, frames, best_z - t_true, scope.clock.now() - t0))
+    return trials
+
+
+@dataclasses.dataclass
+class Visit:
+    time_point: int
+    found: bool
+    frames: int
+    error_um: float
+    drift_um: float  # true focal-plane change since this position's previous time point
+    prediction_error_um: float
+
+
+async def _tracking(profile: Profile) -> list[Visit]:
+    rng = np.random.default_rng(SEED + 2)
+    tracker = FocusTracker(profile)
+    visits: list[Visit] = []
+    async with sim_scope(profile, speed=SIM_SPEED) as scope:
+        fields = [await _field_with_cells(scope, rng, [w]) for w in TRACK_WELLS]
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        last_truth: dict[str, float] = {}
+        t0 = scope.clock.now()
+        for tp in range(TRACK_TIME_POINTS):
+            wait = t0 + tp * TRACK_INTERVAL_S - scope.clock.now()
+            if wait > 0:
+                scope.clock.advance(wait)  # type: ignore[attr-defined]  (simulated clock)
+            for key, (x, y) in zip(TRACK_WELLS, fields):
+                await scope.move_to(x_um=x, y_um=y)
+                truth = scope.true_focus_z_um()
+                assert truth is not None
+                predicted = tracker.predict_z_um(key, x, y, scope.clock.now())
+                r = await tracker.focus(scope, key, x, y)
+                assert r.true_z_um is not None
+                drift = truth - last_truth[key] if key in last_truth else float("nan")
+                visits.append(Visit(tp, r.found, r.frames, r.z_um - r.true_z_um, drift,
+                                    float("nan") if predicted is None else predicted - truth))
+                last_truth[key] = truth
+    return visits
+
+
+TRACK_INTERVAL_S = 900.0
+
+
+def tracking_profile() -> Profile:
+    """The sim profile with a large door-opening drift: 60 um settling with τ = 40 min, the
+    door opened 15 min in, time points every 15 min: up to 19 um between time points."""
+    base = load_profile("sim")
+    assert base.sim is not None
+    focal = dataclasses.replace(base.sim.focal_plane, drift_um=60.0, door_openings_h=[0.25])
+    return dataclasses.replace(base, sim=dataclasses.replace(base.sim, focal_plane=focal))
+
+
+def _p95(values: list[float]) -> float:
+    return float(np.percentile(np.abs(values), 95)) if values else float("nan")
+
+
+def focus_rows() -> list[dict[str, object]]:
+    profile = load_profile("sim")
+    d = profile.optics.depth_of_field_um
+    quarter = d / 4
+    rows: list[dict[str, object]] = [
+        {"name": "depth of field d (10x/0.25)", "value": d, "unit": "um", "target": "-", "ok": None},
+    ]
+    cold = asyncio.run(_cold_trials(profile))
+    found = [t for t in cold if t.found]
+    false_success = [t for t in found if abs(t.error_um) > quarter]
+    cold_frames = statistics.median(t.frames for t in cold)
+    cold_p95 = _p95([t.error_um for t in found])
+    rows += [
+        {"name": f"cold: trials ({COLD_TRIALS}, start ±150 um)", "value": len(cold), "unit": "", "target": "-", "ok": None},
+        {"name": "cold: focus found", "value": len(found), "unit": "trials", "target": f"= {len(cold)}", "ok": len(found) == len(cold)},
+        {"name": "cold: median frames", "value": float(cold_frames), "unit": "frames", "target": "<= 15", "ok": cold_frames <= 15},
+        {"name": "cold: max frames", "value": max(t.frames for t in cold), "unit": "frames", "target": "-", "ok": None},
+        {"name": "cold: p95 |error|", "value": cold_p95, "unit": "um", "target": f"<= d/4 = {quarter:.2f}", "ok": cold_p95 <= quarter},
+        {"name": "cold: success reported out of focus (|err| > d/4)", "value": len(false_success), "unit": "trials", "target": "0", "ok": not false_success},
+        {"name": "cold: median elapsed (scope clock)", "value": statistics.median(t.elapsed_s for t in cold), "unit": "s", "target": "-", "ok": None},
+    ]
+    naive = asyncio.run(_naive_trials(profile))
+    naive_frames = statistics.median(t.frames for t in naive)
+    rows += [
+        {"name": f"naive sweep at d/4: median frames ({len(naive)} trials)", "value": float(naive_frames), "unit": "frames", "target": "-", "ok": None},
+        {"name": "naive sweep: p95 |error|", "value": _p95([t.error_um for t in naive]), "unit": "um", "target": "-", "ok": None},
+        {"name": "naive / autofocus frames", "value": naive_frames / cold_frames, "unit": "x", "target": "> 1", "ok": naive_frames > cold_frames},
+        {"name": "naive / autofocus scope time", "value": statistics.median(t.elapsed_s for t in naive) / statistics.median(t.elapsed_s for t in cold), "unit": "x", "target": "-", "ok": None},
+    ]
+    visits = asyncio.run(_tracking(tracking_profile()))
+    revisits = [v for v in visits if v.time_point > 0]
+    t_found = [v for v in revisits if v.found]
+    t_false = [v for v in t_found if abs(v.error_um) > quarter]
+    t_frames = statistics.median(v.frames for v in revisits)
+    t_p95 = _p95([v.error_um for v in t_found])
+    rows += [
+        {"name": f"tracking: revisits ({len(TRACK_WELLS)} positions x {TRACK_TIME_POINTS - 1})", "value": len(revisits), "unit": "", "target": "-", "ok": None},
+        {"name": "tracking: max drift between time points", "value": max(abs(v.drift_um) for v in revisits), "unit": "um", "target": "<= 20 (scenario)", "ok": None},
+        {"name": "tracking: max |prediction error|", "value": max(abs(v.prediction_error_um) for v in revisits), "unit": "um", "target": "-", "ok": None},
+        {"name": "tracking: focus found", "value": len(t_found), "unit": "visits", "target": f"= {len(revisits)}", "ok": len(t_found) == len(revisits)},
+        {"name": "tracking: median frames", "value": float(t_frames), "unit": "frames", "target": "<= 6", "ok": t_frames <= 6},
+        {"name": "tracking: max frames", "value": max(v.frames for v in revisits), "unit": "frames", "target": "-", "ok": None},
+        {"name": "tracking: p95 |error|", "value": t_p95, "unit": "um", "target": f"<= d/4 = {quarter:.2f}", "ok": t_p95 <= quarter},
+        {"name": "tracking: success reported out of focus", "value": len(t_false), "unit": "visits", "target": "0", "ok": not t_false},
+        {"name": "first visits (focus surface): median frames", "value": float(statistics.median(v.frames for v in visits if v.time_point == 0)), "unit": "frames", "target": "-", "ok": None},
+    ]
+    return rows
+
+
+def main() -> list[dict[str, object]]:
+    return metric_rows() + focus_rows()

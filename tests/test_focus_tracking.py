@@ -1,0 +1,129 @@
+"""Focus tracking through thermal drift on the simulated scope (small frames, dense culture).
+
+The simulator's focal plane drifts after a door opening, z += A·(1 - exp(-t/τ))
+(drivers/sim/focal.py); the tracker must follow it from time point to time point with a
+few frames each, and must say so honestly when a position has nothing to focus on.
+"""
+
+from __future__ import annotations
+
+import json
+import statistics
+
+import pytest
+
+from daemon.focus.tracking import FocusTracker
+from daemon.profile import Profile
+from daemon.scope import Scope
+from tests.helpers import sim_profile, sim_scope
+
+SPEED = 200.0
+WELLS = ("B3", "C6", "E4", "F9")
+INTERVAL_S = 900.0  # 15 min between time points
+
+
+def drifting_profile(**changes: object) -> Profile:
+    # The door opens 15 min in; the plane then rises by up to 30 um with a 40 min time
+    # constant: 9 um in the first interval, then 6, 4, ... (drivers/sim/focal.py).
+    return sim_profile(**{
+        "sim.culture.seeding_per_mm2": 600.0,
+        "sim.focal_plane.drift_um": 30.0,
+        "sim.focal_plane.door_openings_h": [0.25],
+        **changes,
+    })
+
+
+async def visit(scope: Scope, tracker: FocusTracker, well: str) -> tuple[object, float]:
+    assert scope.sim is not None
+    x, y = scope.sim.world.well_centre_um(well)
+    await scope.move_to(x_um=x, y_um=y)
+    result = await tracker.focus(scope, well, x, y)
+    return result, x
+
+
+async def run_time_points(scope: Scope, tracker: FocusTracker, count: int, t0_s: float, first: int = 0) -> list:
+    results = []
+    for tp in range(first, first + count):
+        wait = t0_s + tp * INTERVAL_S - scope.clock.now()
+        if wait > 0:
+            scope.clock.advance(wait)  # type: ignore[attr-defined]  (the simulated clock)
+        for well in WELLS:
+            result, _ = await visit(scope, tracker, well)
+            results.append((tp, well, result))
+    return results
+
+
+async def test_tracking_follows_drift_with_few_frames() -> None:
+    profile = drifting_profile()
+    d = profile.optics.depth_of_field_um
+    tracker = FocusTracker(profile)
+    async with sim_scope(profile, speed=SPEED) as scope:
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        t0 = scope.clock.now()
+        results = await run_time_points(scope, tracker, 5, t0)
+    for tp, well, r in results:
+        assert r.found, (tp, well, r.message)
+        assert abs(r.z_um - r.true_z_um) <= d / 4, (tp, well, r.z_um, r.true_z_um)
+    revisits = [r for tp, _, r in results if tp > 0]
+    assert all("tracked" in r.message for r in revisits)
+    frames = [r.frames for r in revisits]
+    # Tracking target: median <= 6 frames (product brief, Targets); 8 at most here.
+    assert statistics.median(frames) <= 6 and max(frames) <= 8, frames
+    # The first position was a cold search; later first visits start from the surface.
+    firsts = [r for tp, _, r in results if tp == 0]
+    assert "cold" in firsts[0].message and all("focus surface" in r.message for r in firsts[1:])
+    assert all(r.frames < firsts[0].frames for r in firsts[1:])
+
+
+async def test_tracker_state_survives_a_restart() -> None:
+    profile = drifting_profile()
+    d = profile.optics.depth_of_field_um
+    tracker = FocusTracker(profile)
+    async with sim_scope(profile, speed=SPEED) as scope:
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        t0 = scope.clock.now()
+        await run_time_points(scope, tracker, 2, t0)
+        saved = json.dumps(tracker.to_dict())
+        restored = FocusTracker.from_dict(profile, json.loads(saved))
+        results = await run_time_points(scope, restored, 1, t0, first=2)
+    for _, well, r in results:
+        assert r.found and "tracked" in r.message, (well, r.message)
+        assert abs(r.z_um - r.true_z_um) <= d / 4
+        assert r.frames <= 8
+
+
+async def test_tracking_widens_when_the_prediction_is_far_off() -> None:
+    profile = drifting_profile(**{"sim.focal_plane.drift_um": 0.0})
+    d = profile.optics.depth_of_field_um
+    tracker = FocusTracker(profile)
+    async with sim_scope(profile, speed=SPEED) as scope:
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        first, _ = await visit(scope, tracker, "C6")
+        assert first.found
+        # A knock on the stage: the remembered plane is now 6 depths of field off.
+        t_last, z_last = tracker.keys["C6"].planes[-1]
+        tracker.keys["C6"].planes[-1] = (t_last, z_last + 6 * d)
+        result, _ = await visit(scope, tracker, "C6")
+    assert result.found and "widened" in result.message, result.message
+    assert abs(result.z_um - result.true_z_um) <= d / 4
+
+
+async def test_no_focus_keeps_the_predicted_plane_and_the_history() -> None:
+    profile = drifting_profile(**{"sim.focal_plane.drift_um": 0.0})
+    tracker = FocusTracker(profile)
+    async with sim_scope(profile, speed=SPEED) as scope:
+        assert scope.sim is not None
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        good, _ = await visit(scope, tracker, "C6")
+        assert good.found
+        planes_before = list(tracker.keys["C6"].planes)
+        # The same key, but the stage now looks at the empty well H12 (a bubble, say).
+        x, y = scope.sim.world.well_centre_um("H12")
+        await scope.move_to(x_um=x, y_um=y)
+        predicted = tracker.predict_z_um("C6", x, y, scope.clock.now())
+        result = await tracker.focus(scope, "C6", x, y)
+        assert not result.found
+        assert "predicted plane" in result.message
+        assert predicted is not None and result.z_um == pytest.approx(predicted, abs=0.01)
+        assert (await scope.position()).z_um == pytest.approx(predicted, abs=0.01)
+    assert tracker.keys["C6"].planes == planes_before
