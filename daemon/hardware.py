@@ -72,7 +72,7 @@ def _build_sim(profile: Profile, *, sim_speed: float | None, data_dir: Path | No
     if speed <= 0:
         raise ConfigError(profile.path, "sim", "clock_speed", f"--sim-speed must be > 0, got {speed}")
     state_file = data_dir / SIM_CLOCK_FILE if data_dir is not None else None
-    clock = ScaledClock(speed, start_s=world.t0_s, state_file=state_file)
+    clock = ScaledClock(speed, start_s=world.t0_s + profile.sim.culture_age_h * 3600.0, state_file=state_file)
     # Power on over well A1, a little below the focal plane, as a scope left parked would be.
     plate = profile.sim.plate
     start = Position(plate.a1_x_um, plate.a1_y_um, profile.sim.focal_plane.z0_um - 60.0)

@@ -6,7 +6,12 @@ import argparse
 import json
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+from daemon.config import ConfigError
+
+if TYPE_CHECKING:
+    from daemon.profile import Profile
 
 
 def add_profile_options(parser: argparse.ArgumentParser, *, data: bool = False) -> None:
@@ -36,3 +41,39 @@ def truth_beside(estimate: float, truth: float | None, unit: str, fmt: str = ".2
     if truth is not None:
         text += f"  (simulator: {truth:{fmt}} {unit})".rstrip()
     return text
+
+
+def add_position_options(parser: argparse.ArgumentParser, *, verb: str) -> None:
+    """--x-um/--y-um or --well (through the profile's vessel-to-stage map) for commands that image."""
+    parser.add_argument("--x-um", type=float, default=None, help=f"stage x to {verb} at (default: where it is)")
+    parser.add_argument("--y-um", type=float, default=None, help=f"stage y to {verb} at (default: where it is)")
+    parser.add_argument(
+        "--well", default=None,
+        help=f"{verb} at the centre of this well, e.g. C4, through the vessel-to-stage map "
+        "(taught with 'phasewatch vessel teach'; built in on the simulated scope)",
+    )
+    parser.add_argument("--vessel", default=None, help="vessel format for --well (default: the stage map's)")
+    if not any(a.dest == "data" for a in parser._actions):
+        parser.add_argument(
+            "--data", type=Path, default=Path("phasewatch-data"),
+            help="data folder holding the stage maps (default: ./phasewatch-data)",
+        )
+
+
+def target_position_um(profile: Profile, args: argparse.Namespace) -> tuple[float | None, float | None]:
+    """Where --well or --x-um/--y-um ask the stage to go; (None, None) to stay."""
+    if args.well is None:
+        return args.x_um, args.y_um
+    if args.x_um is not None or args.y_um is not None:
+        raise ConfigError(profile.path, "", "--well", "give either --well or --x-um/--y-um, not both")
+    from daemon.vessels.geometry import get_vessel
+    from daemon.vessels.stage_map import load_stage_map, sim_vessel_name
+
+    smap = load_stage_map(args.data, profile)
+    vessel_name = args.vessel or smap.vessel or sim_vessel_name(profile)
+    if not vessel_name:
+        raise ConfigError(profile.path, "", "--vessel", "the stage map names no vessel; give --vessel, e.g. 96-well")
+    try:
+        return smap.well_stage_um(get_vessel(vessel_name), args.well)
+    except ConfigError as exc:
+        raise ConfigError(profile.path, "", "--well", exc.problem) from None

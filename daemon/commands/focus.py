@@ -5,7 +5,13 @@ from __future__ import annotations
 import argparse
 import math
 
-from daemon.commands.common import add_profile_options, print_json, truth_beside
+from daemon.commands.common import (
+    add_position_options,
+    add_profile_options,
+    print_json,
+    target_position_um,
+    truth_beside,
+)
 from daemon.config import ConfigError
 from daemon.focus.autofocus import FocusPoint, FocusResult, autofocus
 from daemon.focus.metrics import METRICS
@@ -26,12 +32,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     add_profile_options(p)
     p.add_argument("--json", action="store_true", help="print the result as JSON")
     p.add_argument("--metric", choices=sorted(METRICS), default="variance_of_laplacian", help="focus metric")
-    p.add_argument("--x-um", type=float, default=None, help="stage x to focus at (default: where it is)")
-    p.add_argument("--y-um", type=float, default=None, help="stage y to focus at (default: where it is)")
-    p.add_argument(
-        "--well", default=None,
-        help="simulated scope only: focus at the centre of this well of the simulated plate, e.g. C4",
-    )
+    add_position_options(p, verb="focus")
     p.add_argument(
         "--z-um", type=float, default=None,
         help="centre of the search (default: the present focus, or the profile's [focus] nominal_z_um "
@@ -59,16 +60,9 @@ def _check_args(args: argparse.Namespace, profile_path: str, width: int, height:
 async def run(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
     _check_args(args, str(profile.path), profile.camera.width_px, profile.camera.height_px)
-    if args.well is not None and not profile.is_simulated:
-        raise ConfigError(profile.path, "", "--well", "wells are known by name only on the simulated scope; give --x-um and --y-um")
+    x_um, y_um = target_position_um(profile, args)
     scope = build_scope(profile, sim_speed=args.sim_speed)
     async with scope, scope.claim("autofocus (command line)"):
-        x_um, y_um = args.x_um, args.y_um
-        if args.well is not None and scope.sim is not None:
-            try:
-                x_um, y_um = scope.sim.world.well_centre_um(args.well)
-            except (KeyError, ValueError) as exc:
-                raise ConfigError(profile.path, "", "--well", f"no well {args.well!r} on the simulated plate ({exc})") from None
         if x_um is not None or y_um is not None:
             await scope.move_to(x_um=x_um, y_um=y_um)
         result = await autofocus(

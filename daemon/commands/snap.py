@@ -6,24 +6,31 @@ import argparse
 import asyncio
 import datetime as dt
 import os
+import sys
 from pathlib import Path
 
 import numpy as np
 import tifffile
 
-from daemon.commands.common import add_profile_options, truth_beside
+from daemon.commands.common import add_position_options, add_profile_options, target_position_um, truth_beside
 from daemon.hardware import build_scope
 from daemon.profile import load_profile
 from drivers.base import Frame
+
+
+DEMO_WELL = "B3"
 
 
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("snap", help="capture one frame and save it as a lossless TIFF")
     add_profile_options(p)
     p.add_argument("--output", "-o", type=Path, required=True, help="file to write (.tif)")
-    p.add_argument("--x-um", type=float, default=None, help="stage x before the frame")
-    p.add_argument("--y-um", type=float, default=None, help="stage y before the frame")
-    p.add_argument("--z-um", type=float, default=None, help="focus position before the frame")
+    add_position_options(p, verb="take the frame")
+    p.add_argument("--z-um", type=float, default=None, help="focus position for the frame")
+    p.add_argument(
+        "--autofocus", action="store_true",
+        help="focus before the frame (default on the simulated scope when no --z-um is given)",
+    )
     p.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: profile)")
     p.add_argument("--gain-db", type=float, default=None, help="gain (default: profile)")
     p.set_defaults(func=run)
@@ -57,15 +64,25 @@ def write_tiff(path: Path, frame: Frame, *, pixel_size_um: float, x_um: float, y
 async def run(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
     if args.output.suffix.lower() not in (".tif", ".tiff"):
-        print(f"phasewatch: --output {args.output}: use a .tif or .tiff name (lossless TIFF)")
+        print(f"phasewatch: --output {args.output}: use a .tif or .tiff name (lossless TIFF)", file=sys.stderr)
         return 2
     if not args.output.parent.exists():
-        print(f"phasewatch: --output {args.output}: folder {args.output.parent} does not exist")
+        print(f"phasewatch: --output {args.output}: folder {args.output.parent} does not exist", file=sys.stderr)
         return 2
+    x_um, y_um = target_position_um(profile, args)
+    if profile.is_simulated and args.well is None and x_um is None and y_um is None:
+        # After homing the simulated stage sits off the plate: show a well with cells instead.
+        args.well = DEMO_WELL
+        x_um, y_um = target_position_um(profile, args)
     scope = build_scope(profile, sim_speed=args.sim_speed)
-    async with scope:
-        if args.x_um is not None or args.y_um is not None or args.z_um is not None:
-            await scope.move_to(x_um=args.x_um, y_um=args.y_um, z_um=args.z_um)
+    async with scope, scope.claim("snap (command line)"):
+        if x_um is not None or y_um is not None or args.z_um is not None:
+            await scope.move_to(x_um=x_um, y_um=y_um, z_um=args.z_um)
+        if args.autofocus or (profile.is_simulated and args.z_um is None):
+            from daemon.focus.autofocus import autofocus
+
+            focus = await autofocus(scope)
+            print(focus.message)
         pos = await scope.position()
         frame = await scope.capture(exposure_ms=args.exposure_ms, gain_db=args.gain_db)
         await asyncio.to_thread(

@@ -51,7 +51,7 @@ class SimFocalPlane:
     sag_um: float = option(12.0, doc="bottom sag at the centre relative to the edges (paraboloid)", min=-500.0, max=500.0, unit="um")
     drift_um: float = option(25.0, doc="thermal focus drift after each door opening", min=-500.0, max=500.0, unit="um")
     drift_tau_min: float = option(40.0, doc="time constant of the drift's exponential settling", min=0.1, max=10000.0, unit="min")
-    door_openings_h: list[float] = option([2.0, 26.0], doc="hours after the clock's start when the incubator door opens")
+    door_openings_h: list[float] = option([2.0, 26.0], doc="hours after seeding ([sim] start_time) when the incubator door opens")
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -127,7 +127,10 @@ class SimOptics:
 class SimConfig:
     seed: int = option(20261201, doc="seed: the same seed gives the same culture and noise")
     clock_speed: float = option(1.0, doc="simulated seconds per real second", min=0.001, max=1e7)
-    start_time: str = option("2026-03-02T09:00:00+00:00", doc="simulated time at the clock's first start (ISO 8601)")
+    start_time: str = option("2026-03-02T09:00:00+00:00", doc="simulated time the plate was seeded (ISO 8601)")
+    culture_age_h: float = option(
+        48.0, doc="age of the culture (hours after start_time) when the simulated clock first starts", min=0.0, max=10000.0, unit="h"
+    )
     plate: SimPlate = section(SimPlate)
     culture: SimCulture = section(SimCulture)
     focal_plane: SimFocalPlane = section(SimFocalPlane)
