@@ -1,0 +1,39 @@
+"""``phasewatch export ID --data DIR [--stacks]``: CSV of per-frame metrics, per-position stacks."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("export", help="write a time-lapse's per-frame metrics as CSV (and stacks per position)")
+    p.add_argument("id", type=int, metavar="ID", help="time-lapse id (phasewatch timelapse list)")
+    p.add_argument("--data", type=Path, default=Path("phasewatch-data"), help="data folder (default: ./phasewatch-data)")
+    p.add_argument("--output", "-o", type=Path, default=None, metavar="DIR",
+                   help="where to write (default: DATA/exports/<time-lapse folder>)")
+    p.add_argument("--stacks", action="store_true", help="also write one multi-page OME-TIFF per position")
+    p.add_argument("--kind", choices=("raw", "corrected"), default=None,
+                   help="frames for the stacks (default: corrected where saved, else raw)")
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    from daemon.storage.export import default_export_dir, export_csv, export_stacks
+    from daemon.storage.index import INDEX_FILE, open_index
+
+    if not (args.data / INDEX_FILE).exists():
+        raise OSError(f"{args.data}: no phasewatch index here (no time-lapse was run with --data {args.data})")
+    with open_index(args.data) as index:
+        out = args.output or default_export_dir(args.data, index, args.id)
+        frames_csv, points_csv = export_csv(index, args.id, out)
+        n_frames = len(index.frames(args.id))
+        print(f"wrote {frames_csv} ({n_frames} frames) and {points_csv}")
+        if args.stacks:
+            stacks = export_stacks(index, args.data, args.id, out, kind=args.kind)
+            for s in stacks:
+                skipped = f", {s.skipped_time_points} incomplete time points left out" if s.skipped_time_points else ""
+                print(f"wrote {s.path} ({s.time_points} time points x {s.z_planes} planes{skipped})")
+            if not stacks:
+                print("no frames to stack")
+    return 0

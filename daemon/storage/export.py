@@ -1,0 +1,139 @@
+"""Exports of a time-lapse: CSV of per-frame metrics, and one multi-page OME-TIFF per position."""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import tifffile
+
+from daemon.storage.frames import atomic_open, make_dirs
+from daemon.storage.index import Index
+from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
+
+FRAME_COLUMNS = (
+    "timelapse_id", "time_point", "planned_s", "t_s", "time_utc", "elapsed_h", "late_s", "position",
+    "well", "site", "z_index", "kind", "x_um", "y_um", "z_um", "exposure_ms", "gain_db",
+    "focus_score", "focus_found", "confluence", "status", "path",
+)
+TIME_POINT_COLUMNS = (
+    "timelapse_id", "time_point", "status", "planned_s", "started_s", "finished_s", "late_s",
+    "n_ok", "n_failed", "reason",
+)
+
+
+def _atomic_csv(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> None:
+    with atomic_open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(header)
+        writer.writerows(rows)
+
+
+def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
+    """Write ``frames.csv`` (one row per frame) and ``time-points.csv`` (incl. missed ones)."""
+    tl = index.require_timelapse(tl_id)
+    make_dirs(out_dir)
+    t0 = tl["t0_s"]
+    points = {tp["tp"]: tp for tp in index.time_points(tl_id)}
+    frame_rows = []
+    for f in index.frames(tl_id):
+        planned = points[f["tp"]]["planned_s"] if f["tp"] in points else t0 + f["tp"] * tl["interval_s"]
+        found = f["focus_found"]
+        frame_rows.append([
+            tl_id, f["tp"], f"{planned:.3f}", f"{f['t_s']:.3f}", iso_utc(f["t_s"]), f"{(f['t_s'] - t0) / 3600:.4f}",
+            f"{f['t_s'] - planned:.3f}", f["key"], f["well"], f["site"], f["z_index"], f["kind"],
+            f"{f['x_um']:.2f}", f"{f['y_um']:.2f}", f"{f['z_um']:.3f}", f["exposure_ms"], f["gain_db"],
+            "" if f["focus_score"] is None else f"{f['focus_score']:.6g}",
+            "" if found is None else ("yes" if found else "no"),
+            "" if f["confluence"] is None else f"{f['confluence']:.4f}",
+            f["status"], f["path"],
+        ])
+    tp_rows = []
+    for tp in points.values():
+        late = "" if tp["started_s"] is None else f"{tp['started_s'] - tp['planned_s']:.3f}"
+        tp_rows.append([
+            tl_id, tp["tp"], tp["status"], f"{tp['planned_s']:.3f}",
+            "" if tp["started_s"] is None else f"{tp['started_s']:.3f}",
+            "" if tp["finished_s"] is None else f"{tp['finished_s']:.3f}",
+            late, tp["n_ok"], tp["n_failed"], tp["reason"] or "",
+        ])
+    frames_csv = out_dir / "frames.csv"
+    points_csv = out_dir / "time-points.csv"
+    _atomic_csv(frames_csv, FRAME_COLUMNS, frame_rows)
+    _atomic_csv(points_csv, TIME_POINT_COLUMNS, tp_rows)
+    return frames_csv, points_csv
+
+
+@dataclasses.dataclass(frozen=True)
+class StackExport:
+    position: str
+    path: Path
+    time_points: int
+    z_planes: int
+    skipped_time_points: int
+
+
+def _meta_of(row: dict[str, Any], tl: dict[str, Any]) -> FrameMeta:
+    return FrameMeta(
+        timelapse_id=row["timelapse_id"], timelapse_name=tl["name"], tp=row["tp"], key=row["key"],
+        well=row["well"], site=row["site"], z_index=row["z_index"], kind=row["kind"], t_s=row["t_s"],
+        delta_t_s=row["delta_t_s"], x_um=row["x_um"], y_um=row["y_um"], z_um=row["z_um"],
+        exposure_ms=row["exposure_ms"], gain_db=row["gain_db"], bit_depth=row["bit_depth"],
+        pixel_size_um=row["pixel_size_um"],
+    )
+
+
+def export_stacks(
+    index: Index, data_dir: Path, tl_id: int, out_dir: Path, *, kind: str | None = None
+) -> list[StackExport]:
+    """One OME-TIFF per position: axes TYX, or TZYX for z-stacks, planes in time order.
+
+    ``kind`` picks raw or corrected frames (default: corrected where any were saved).
+    Time points where the position failed or lacks a plane are left out of its stack and
+    counted; the planes' DeltaT keeps the true acquisition times.
+    """
+    tl = index.require_timelapse(tl_id)
+    frames = [f for f in index.frames(tl_id) if f["status"] == "ok"]
+    if kind is None:
+        kind = "corrected" if any(f["kind"] == "corrected" for f in frames) else "raw"
+    by_position: dict[str, dict[int, dict[int, dict[str, Any]]]] = {}
+    for f in frames:
+        if f["kind"] == kind:
+            by_position.setdefault(f["key"], {}).setdefault(f["tp"], {})[f["z_index"]] = f
+    make_dirs(out_dir)
+    results = []
+    for key in sorted(by_position):
+        per_tp = by_position[key]
+        n_z = max(len(planes) for planes in per_tp.values())
+        complete = [tp for tp in sorted(per_tp) if len(per_tp[tp]) == n_z]
+        rows = [per_tp[tp][z] for tp in complete for z in sorted(per_tp[tp])]
+        first = rows[0]
+        dtype = np.uint8 if first["bit_depth"] <= 8 else np.uint16
+        shape: tuple[int, ...] = (len(complete), first["height_px"], first["width_px"])
+        axes = "TYX"
+        if n_z > 1:
+            shape = (len(complete), n_z, first["height_px"], first["width_px"])
+            axes = "TZYX"
+        metadata = stack_metadata([_meta_of(r, tl) for r in rows], axes, f"{tl['name']} {key} {kind}")
+
+        def pages(rows: list[dict[str, Any]] = rows) -> Iterator[np.ndarray]:
+            for r in rows:
+                yield tifffile.imread(data_dir / r["path"])
+
+        path = out_dir / f"{key}_{kind}.ome.tif"
+        with atomic_open(path) as fh:
+            tifffile.imwrite(
+                fh, pages(), shape=shape, dtype=dtype, ome=True, photometric="minisblack",
+                metadata=metadata, software="phasewatch",
+            )
+        results.append(StackExport(key, path, len(complete), n_z, len(per_tp) - len(complete)))
+    return results
+
+
+def default_export_dir(data_dir: Path, index: Index, tl_id: int) -> Path:
+    tl = index.require_timelapse(tl_id)
+    return data_dir / "exports" / Path(tl["folder"]).name

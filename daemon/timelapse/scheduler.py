@@ -1,0 +1,663 @@
+"""The time-lapse scheduler: runs a plan's time points on the scope's clock, unattended.
+
+* Time points are anchored at ``t0 + k * interval`` (:mod:`daemon.timelapse.timing`); a
+  late one runs late and is recorded with its real start, one whose slot closed is
+  recorded as missed with the reason (overrun, pause, daemon down), never invented.
+* Each time point holds the hardware (``scope.claim``) and visits every position: move,
+  focus (tracking, first time point only, or off), expose (z-stack optional), then
+  correct, score, write and index every frame (:mod:`daemon.timelapse.processing`) in a
+  worker thread. Confluence of the analysed plane is worked out by a background task
+  while the scope moves on, and feeds the culture watch at the end of the time point.
+* A hardware fault at one position (controller reset, camera unplugged) is recorded for
+  that position with its reason; the scope is brought back and the next position runs.
+* A storage failure (disk full, I/O error) or the free-space reserve being reached stops
+  the time-lapse cleanly with an alert; no partial file is ever left.
+* Everything needed to go on is in the data folder's index (plan, positions, t0, state,
+  time points, focus tracker, culture watch), so :meth:`Scheduler.resume` after a crash
+  or power cut continues where the process stopped; a time point interrupted while its
+  slot is still open is completed, position by position, without duplicating frames.
+* ``pause``, ``resume`` and ``abort`` act between positions; other processes ask for
+  them through the index (:meth:`Index.post_request`).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import dataclasses
+import json
+import logging
+import sqlite3
+import statistics
+from collections.abc import Callable
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from daemon.storage.frames import FrameStore
+from daemon.storage.index import Index
+from daemon.storage.space import DEFAULT_RESERVE_MB, SpaceGuard, frame_bytes_estimate
+from daemon.timelapse import timing
+from daemon.timelapse.events import Event
+from daemon.timelapse.plan import Plan, PlannedPosition
+from daemon.timelapse.processing import FrameProcessor, PositionFrames, SavedPosition
+from daemon.timelapse.recovery import recover
+from drivers.base import Frame, HardwareError, Position
+
+if TYPE_CHECKING:
+    from daemon.focus.autofocus import FocusPoint, FocusResult
+    from daemon.scope import Scope
+
+log = logging.getLogger(__name__)
+
+# Real seconds between looks for pause/abort requests from other processes while waiting.
+POLL_REAL_S = 0.2
+# Analysed planes waiting for confluence; beyond this the position loop waits for the
+# analysis to catch up, so frames never pile up in memory.
+ANALYSIS_BACKLOG = 8
+MISSED_DOWN = "the daemon was not running"
+MISSED_OVERRUN = "the previous time point ran into this one's slot"
+MISSED_PAUSED = "the time-lapse was paused"
+STOP_REQUESTS = ("pause", "abort", "shutdown")
+# Whole-travel focus searches per time point while no plane is known yet: enough to get
+# past an empty well or a bubble, few enough that a dead lamp does not cost 100 frames
+# at every position.
+FIRST_FIND_TRIES = 2
+
+
+class StorageStop(Exception):
+    """Raised inside a time point when storage can take no more frames."""
+
+
+@dataclasses.dataclass
+class _AnalysisJob:
+    k: int
+    key: str
+    frame_ids: list[int]
+    image: np.ndarray | None  # None: read it back from ``path``
+    path: str = ""
+
+
+def positions_to_dicts(positions: list[PlannedPosition]) -> list[dict[str, Any]]:
+    return [dataclasses.asdict(p) for p in positions]
+
+
+def positions_from_dicts(items: list[dict[str, Any]]) -> list[PlannedPosition]:
+    return [PlannedPosition(**d) for d in items]
+
+
+def z_planes_um(focus_z_um: float, plan: Plan) -> list[float]:
+    """The planes imaged at a position: the focal plane, or a z-stack centred on it, bottom up."""
+    if plan.z_stack is None:
+        return [focus_z_um]
+    n, step = plan.z_stack.count, plan.z_stack.step_um
+    return [focus_z_um + (i - (n - 1) / 2.0) * step for i in range(n)]
+
+
+def analysis_plane(plan: Plan) -> int:
+    """Index of the plane analysed for confluence: the focal plane (or the one just above it)."""
+    return (plan.z_stack.count // 2) if plan.z_stack else 0
+
+
+class Scheduler:
+    """Runs one time-lapse (a row of the index) on ``scope``; create with :meth:`create` or :meth:`resume`."""
+
+    def __init__(
+        self,
+        scope: Scope,
+        data_dir: Path,
+        index: Index,
+        timelapse_id: int,
+        *,
+        on_event: Callable[[Event], None] | None = None,
+        space_guard: SpaceGuard | None = None,
+        resumed: bool = False,
+    ) -> None:
+        from daemon.culture.alerts import CultureWatch
+        from daemon.focus.tracking import FocusTracker
+
+        row = index.require_timelapse(timelapse_id)
+        self.scope = scope
+        self.profile = scope.profile
+        self.data_dir = data_dir
+        self.index = index
+        self.id = timelapse_id
+        spec = json.loads(row["plan_json"])
+        self.plan = Plan.from_dict(spec["plan"], file=f"time-lapse {timelapse_id} in {index.path}")
+        self.positions = positions_from_dicts(spec["positions"])
+        self.t0_s: float = row["t0_s"]
+        self.interval_s: float = row["interval_s"]
+        self.count: int = row["count"]
+        self.state: str = row["state"]
+        self.on_event = on_event
+        self.store = FrameStore(data_dir, index)
+        self.guard = space_guard or SpaceGuard(data_dir, row["reserve_mb"])
+        saved = index.resume_state(timelapse_id)
+        self.tracker = (
+            FocusTracker.from_dict(self.profile, saved["tracker"]) if saved.get("tracker") else FocusTracker(self.profile)
+        )
+        self.watch = CultureWatch.from_dict(saved["watch"]) if saved.get("watch") else CultureWatch()
+        self.first_focus: dict[str, Any] = saved.get("first_focus") or {"planes": {}, "fixed_z_um": None}
+        cam = self.profile.camera
+        self.exposure_ms = self.plan.exposure_ms if self.plan.exposure_ms is not None else cam.exposure_ms
+        self.gain_db = self.plan.gain_db if self.plan.gain_db is not None else cam.gain_db
+        self.analysis_plane = analysis_plane(self.plan)
+        self.processor: FrameProcessor | None = None
+        self.software_s: list[float] = []  # critical-path software time of each position saved
+        self._confluence: Callable[..., Any] | None = None
+        self._analysis: asyncio.Queue[_AnalysisJob] = asyncio.Queue(maxsize=ANALYSIS_BACKLOG)
+        self._request: str | None = None
+        self._shutdown = False
+        self._wake = asyncio.Event()
+        self._miss_reason = MISSED_DOWN if resumed else MISSED_OVERRUN
+        self._next_k, self._open_k = self._progress_from_index()
+        self._first_finds: dict[int, int] = {}
+
+    # -- construction ------------------------------------------------------------------
+
+    @classmethod
+    def create(
+        cls,
+        scope: Scope,
+        plan: Plan,
+        data_dir: Path,
+        index: Index,
+        positions: list[PlannedPosition],
+        *,
+        reserve_mb: float = DEFAULT_RESERVE_MB,
+        warnings: list[str] | None = None,
+        on_event: Callable[[Event], None] | None = None,
+        space_guard: SpaceGuard | None = None,
+    ) -> Scheduler:
+        """Record a new time-lapse starting now (time point 0 is due at once)."""
+        now = scope.clock.now()
+        tl_id = index.create_timelapse(
+            name=plan.name,
+            plan={"plan": plan.to_dict(), "positions": positions_to_dicts(positions)},
+            profile_path=str(scope.profile.path),
+            profile_name=scope.profile.name,
+            created_s=now,
+            t0_s=now,
+            interval_s=plan.interval_s,
+            count=plan.count,
+            n_positions=len(positions),
+            reserve_mb=reserve_mb,
+        )
+        for text in warnings or []:
+            index.add_alert(tl_id, t_s=now, level="warning", kind="plan", message=text)
+        return cls(scope, data_dir, index, tl_id, on_event=on_event, space_guard=space_guard)
+
+    @classmethod
+    def resume(
+        cls,
+        scope: Scope,
+        data_dir: Path,
+        index: Index,
+        timelapse_id: int,
+        *,
+        on_event: Callable[[Event], None] | None = None,
+        space_guard: SpaceGuard | None = None,
+    ) -> Scheduler:
+        """Continue an unfinished time-lapse of this data folder (after a restart)."""
+        row = index.require_timelapse(timelapse_id)
+        if row["profile_name"] != scope.profile.name:
+            from daemon.config import ConfigError
+
+            raise ConfigError(
+                scope.profile.path, "", None,
+                f"time-lapse {timelapse_id} was started with profile {row['profile_name']!r}; resume it with that profile",
+            )
+        return cls(scope, data_dir, index, timelapse_id, on_event=on_event, space_guard=space_guard, resumed=True)
+
+    def _progress_from_index(self) -> tuple[int, int | None]:
+        """(first time point not yet recorded, time point left running by a crash or pause)."""
+        points = self.index.time_points(self.id)
+        open_k = next((p["tp"] for p in points if p["status"] == "running"), None)
+        next_k = max((p["tp"] for p in points), default=-1) + 1
+        return next_k, open_k
+
+    # -- control -----------------------------------------------------------------------
+
+    def pause(self) -> None:
+        self._ask("pause")
+
+    def resume_running(self) -> None:
+        self._ask("resume")
+
+    def abort(self) -> None:
+        self._ask("abort")
+
+    def shutdown(self) -> None:
+        """Stop in this process but leave the time-lapse unfinished, to be resumed later."""
+        self._ask("shutdown")
+
+    def set_miss_reason(self, reason: str) -> None:
+        """Why time points due before the next run were not run (recorded with them)."""
+        self._miss_reason = reason
+
+    def _ask(self, request: str) -> None:
+        self._request = request
+        self._wake.set()
+
+    async def _take_requests(self) -> None:
+        external = await asyncio.to_thread(self.index.take_request, self.id)
+        request = self._request or external
+        self._request = None
+        if request == "pause" and self.state == "running":
+            await self._set_state("paused", "paused by request")
+        elif request == "resume" and self.state == "paused":
+            self._miss_reason = MISSED_PAUSED
+            await self._set_state("running")
+        elif request == "abort":
+            await self._close_open_time_point("aborted")
+            await self._set_state("aborted", "aborted by request", finished=True)
+        elif request == "shutdown":
+            self._shutdown = True
+
+    async def _interrupted(self) -> bool:
+        """Checked between positions: a request (here or from another process) that ends
+        this time point's run here, leaving it open."""
+        if self._request is None:
+            self._request = await asyncio.to_thread(self.index.peek_request, self.id)
+        return self._request in STOP_REQUESTS
+
+    # -- events ------------------------------------------------------------------------
+
+    def _emit(self, event_type: str, /, **fields: Any) -> None:
+        if self.on_event is not None:
+            self.on_event({"type": event_type, "timelapse_id": self.id, **fields})
+
+    async def _alert(self, level: str, kind: str, message: str) -> None:
+        now = self.scope.clock.now()
+        try:
+            alert = await asyncio.to_thread(
+                self.index.add_alert, self.id, t_s=now, level=level, kind=kind, message=message
+            )
+        except (OSError, sqlite3.DatabaseError):
+            # The index itself may be what ran out of space: the alert still goes out.
+            alert = {"timelapse_id": self.id, "t_s": now, "level": level, "kind": kind, "message": message}
+        self._emit("alert", **{k: v for k, v in alert.items() if k != "timelapse_id"})
+
+    async def _set_state(self, state: str, reason: str | None = None, *, finished: bool = False) -> None:
+        self.state = state
+        finished_s = self.scope.clock.now() if finished else None
+        with contextlib.suppress(OSError, sqlite3.DatabaseError):
+            await asyncio.to_thread(self.index.set_state, self.id, state, reason=reason, finished_s=finished_s)
+        self._emit("state", state=state, reason=reason)
+
+    # -- the main loop -----------------------------------------------------------------
+
+    async def run(self) -> str:
+        """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
+        await self._prepare()
+        worker = asyncio.create_task(self._analysis_worker(), name=f"time-lapse {self.id} analysis")
+        try:
+            await self._queue_unanalysed()
+            while self.state in ("running", "paused") and not self._shutdown:
+                await self._take_requests()
+                if self._shutdown or self.state not in ("running", "paused"):
+                    break
+                if self.state == "paused":
+                    await self._idle(POLL_REAL_S)
+                    continue
+                await self._step()
+            await self._drain_analysis()
+        finally:
+            worker.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await worker
+            await self._save_resume_state(watch=True)
+        return self.state
+
+    async def _step(self) -> None:
+        now = self.scope.clock.now()
+        if self._open_k is not None:
+            if self._open_k < self.count and timing.slot_open(self._open_k, self.t0_s, self.interval_s, now):
+                await self._run_time_point(self._open_k)
+                return
+            await self._close_open_time_point("interrupted: " + self._miss_reason)
+        step = timing.next_step(self._next_k, self.count, self.t0_s, self.interval_s, now)
+        if step.missed:
+            await self._record_missed(step.missed)
+        if step.action == "done":
+            await self._set_state("completed", finished=True)
+        elif step.action == "wait":
+            await self._idle(min(POLL_REAL_S, max(0.0, step.at_s - now) / self.scope.clock.speed))
+        else:
+            await self._run_time_point(step.k)
+
+    async def _idle(self, real_s: float) -> None:
+        self._wake.clear()
+        with contextlib.suppress(asyncio.TimeoutError):
+            await asyncio.wait_for(self._wake.wait(), timeout=max(real_s, 0.0))
+
+    async def _prepare(self) -> None:
+        """Correction, frame kinds and analysis for this run; announce the start."""
+        from daemon.illumination.calibration import CalibrationStore
+
+        corrector = None
+        calibration = CalibrationStore(self.data_dir / "calibration")
+        if self.plan.correction:
+            corrector = await asyncio.to_thread(
+                calibration.corrector_for, self.profile, self.exposure_ms, self.gain_db
+            )
+        kinds: tuple[str, ...] = ("raw",)
+        if corrector is not None:
+            kinds = {"raw": ("raw",), "corrected": ("corrected",), "both": ("raw", "corrected")}[self.plan.save]
+        self.processor = FrameProcessor(
+            self.store, timelapse_id=self.id, timelapse_name=self.plan.name, t0_s=self.t0_s,
+            pixel_size_um=self.profile.optics.pixel_size_um, objective=self.profile.optics.objective,
+            kinds=kinds, corrector=corrector, analysis_plane=self.analysis_plane,
+        )
+        try:
+            from daemon.culture.confluence import confluence
+        except ImportError:
+            self._confluence = None  # culture analysis not installed: frames carry the focus score only
+        else:
+            self._confluence = confluence
+        resumed = bool(await asyncio.to_thread(self.index.time_points, self.id))
+        if not resumed:
+            # Time point 0 is planned for when acquisition can really begin, not for when
+            # the plan was recorded: on a fast simulated clock the set-up above is hours.
+            self.t0_s = self.scope.clock.now()
+            await asyncio.to_thread(self.index.set_t0, self.id, self.t0_s)
+            self.processor.t0_s = self.t0_s
+        self._emit(
+            "state", state=self.state, reason="resumed" if resumed else "started",
+            name=self.plan.name, count=self.count, interval_s=self.interval_s,
+            positions=len(self.positions), t0_s=self.t0_s,
+        )
+        if self.plan.correction and corrector is None:
+            why = calibration.describe_missing(self.profile, self.exposure_ms, self.gain_db)
+            await self._alert(
+                "warning", "correction",
+                f"illumination correction asked for but not possible: {why}; saving raw frames",
+            )
+
+    @property
+    def kinds(self) -> tuple[str, ...]:
+        return self.processor.kinds if self.processor is not None else ("raw",)
+
+    async def _record_missed(self, missed: tuple[int, ...]) -> None:
+        items = [(k, timing.planned_s(self.t0_s, self.interval_s, k)) for k in missed]
+        await asyncio.to_thread(self.index.record_missed, self.id, items, self._miss_reason)
+        self._next_k = max(self._next_k, missed[-1] + 1)
+        for k, planned in items:
+            self._emit("time_point", tp=k, status="missed", planned_s=planned, reason=self._miss_reason)
+        span = f"{missed[0]}" + (f"..{missed[-1]}" if len(missed) > 1 else "")
+        await self._alert("warning", "missed", f"{len(missed)} time point(s) missed ({span}): {self._miss_reason}")
+
+    async def _close_open_time_point(self, reason: str) -> None:
+        k = self._open_k
+        if k is None:
+            return
+        done = {p["key"] for p in await asyncio.to_thread(self.index.positions, self.id, k)}
+        for pos in self.positions:
+            if pos.key not in done:
+                await asyncio.to_thread(
+                    self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
+                    status="skipped", reason=reason,
+                )
+        await self._finish_time_point(k, forced_reason=reason)
+
+    async def _finish_time_point(self, k: int, forced_reason: str | None = None) -> None:
+        rows = await asyncio.to_thread(self.index.positions, self.id, k)
+        ok = sum(r["status"] == "ok" for r in rows)
+        status = "done" if ok == len(self.positions) else ("failed" if ok == 0 else "partial")
+        reason = forced_reason
+        if reason is None and status != "done":
+            reason = f"{len(self.positions) - ok} of {len(self.positions)} positions not imaged"
+        row = await asyncio.to_thread(
+            self.index.finish_time_point, self.id, k, status=status, finished_s=self.scope.clock.now(), reason=reason
+        )
+        self._open_k = None
+        self._next_k = max(self._next_k, k + 1)
+        await self._drain_analysis()
+        await self._update_culture_watch(k)
+        await self._save_resume_state(watch=True)
+        fields = ("tp", "status", "planned_s", "started_s", "finished_s", "n_ok", "n_failed", "reason")
+        self._emit("time_point", **{key: row[key] for key in fields})
+
+    # -- one time point ----------------------------------------------------------------
+
+    async def _run_time_point(self, k: int) -> None:
+        planned = timing.planned_s(self.t0_s, self.interval_s, k)
+        done = {p["key"] for p in await asyncio.to_thread(self.index.positions, self.id, k)}
+        todo = [p for p in self.positions if p.key not in done]
+        frames_each = len(self.kinds) * self.plan.frames_per_position
+        cam = self.profile.camera
+        needed = len(todo) * frames_each * frame_bytes_estimate(cam.width_px, cam.height_px, cam.bit_depth)
+        space = await asyncio.to_thread(self.guard.check, needed)
+        if not space.ok:
+            why = f"free-space reserve reached: {space.message}"
+            if self._open_k is None:
+                self._miss_reason = why
+                await self._record_missed((k,))
+            await self._stop_for_storage(why)
+            return
+        started = self.scope.clock.now()
+        await asyncio.to_thread(self.index.begin_time_point, self.id, k, planned_s=planned, started_s=started)
+        self._open_k = k
+        self._miss_reason = MISSED_OVERRUN
+        late_s = started - planned
+        self._emit("time_point", tp=k, status="running", planned_s=planned, started_s=started, late_s=late_s)
+        async with self.scope.claim(f"time-lapse {self.plan.name}"):
+            if self.scope.last_position is None:
+                # Position unknown (not homed since connecting, or lost): nothing can move until homed.
+                with contextlib.suppress(HardwareError):
+                    await self.scope.home()
+            for i, pos in enumerate(todo):
+                if await self._interrupted():
+                    return  # the time point stays open; a resume inside its slot completes it
+                self._emit(
+                    "progress", tp=k, count=self.count, position=pos.key, index=len(done) + i,
+                    positions=len(self.positions), late_s=round(late_s, 3),
+                )
+                try:
+                    await self._image_position(k, pos)
+                except StorageStop as exc:
+                    await self._stop_for_storage(str(exc))
+                    return
+                except Exception as exc:  # noqa: BLE001 - one position's bug must not end a days-long run
+                    log.exception("time point %d, position %s", k, pos.key)
+                    text = f"internal error: {type(exc).__name__}: {exc}"
+                    await self._record_position(k, pos, "failed", text)
+                    await self._alert("error", "internal", f"time point {k}, position {pos.key}: {text}")
+        await self._finish_time_point(k)
+
+    async def _stop_for_storage(self, why: str) -> None:
+        await self._alert("error", "storage", f"time-lapse stopped: {why}")
+        if self._open_k is not None:
+            with contextlib.suppress(OSError, sqlite3.DatabaseError):
+                await self._close_open_time_point(f"stopped: {why}")
+        await self._set_state("stopped", why, finished=True)
+
+    async def _image_position(self, k: int, pos: PlannedPosition) -> None:
+        done_planes = await asyncio.to_thread(self.index.frame_planes, self.id, k, pos.key)
+        wanted = {(z, kind) for z in range(self.plan.frames_per_position) for kind in self.kinds}
+        if wanted <= done_planes:
+            # Saved in full before a restart; only its record was lost.
+            await self._record_position(k, pos, "ok", "frames were saved before the restart")
+            return
+        try:
+            await self.scope.move_to(x_um=pos.x_um, y_um=pos.y_um)
+            focus_z, result = await self._focus(k, pos)
+            frames = await self._expose(focus_z, result, done_planes)
+        except HardwareError as exc:
+            await self._position_failed(k, pos, exc)
+            return
+        assert self.processor is not None
+        data = PositionFrames(k, pos, frames, None if result is None else result.found, done_planes)
+        try:
+            saved = await asyncio.to_thread(self.processor.save_position, data)
+        except (OSError, sqlite3.DatabaseError) as exc:
+            raise StorageStop(str(exc)) from exc
+        self.software_s.append(saved.software_s)
+        reason = None if result is None or result.found else result.message
+        await self._record_position(k, pos, "ok", reason, focus=None if result is None else result.to_dict())
+        self._emit_frames(k, pos, saved)
+        if saved.analysis_frame_ids and self._confluence is not None:
+            await self._analysis.put(_AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
+        await self._save_resume_state()
+
+    def _emit_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
+        for meta, path, frame_id in saved.frames:
+            self._emit(
+                "frame", tp=k, position=pos.key, well=pos.well, site=pos.site, z_index=meta.z_index,
+                kind=meta.kind, path=path, frame_id=frame_id, t_s=meta.t_s, z_um=meta.z_um,
+                focus_score=meta.focus_score, focus_found=meta.focus_found,
+            )
+
+    async def _record_position(
+        self, k: int, pos: PlannedPosition, status: str, reason: str | None, focus: dict[str, Any] | None = None
+    ) -> None:
+        await asyncio.to_thread(
+            self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
+            status=status, reason=reason, t_s=self.scope.clock.now(), focus=focus,
+        )
+
+    async def _position_failed(self, k: int, pos: PlannedPosition, exc: HardwareError) -> None:
+        reason = f"{type(exc).__name__}: {exc}"
+        await self._record_position(k, pos, "failed", reason)
+        await self._alert("warning", "hardware", f"time point {k}, position {pos.key} failed: {exc}")
+        try:
+            what = await recover(self.scope, exc)
+        except HardwareError as again:
+            await self._alert("error", "hardware", f"scope not recovered after the fault at {pos.key}: {again}")
+            return
+        self._emit("progress", tp=k, position=pos.key, recovered=what)
+
+    async def _focus(self, k: int, pos: PlannedPosition) -> tuple[float, FocusResult | None]:
+        """The plane to image at: tracked, remembered from the first time point, or fixed."""
+        policy = self.plan.autofocus
+        planes: dict[str, float] = self.first_focus["planes"]
+        if policy == "off":
+            if self.first_focus.get("fixed_z_um") is None:
+                # Focus off: every position is imaged in the plane the user left the focus at.
+                self.first_focus["fixed_z_um"] = (await self.scope.position()).z_um
+            return float(self.first_focus["fixed_z_um"]), None
+        if policy == "first" and pos.key in planes:
+            return float(planes[pos.key]), None
+
+        def point(p: FocusPoint) -> None:
+            self._emit("focus_point", tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s)
+
+        nothing_known = not any(state.planes for state in self.tracker.keys.values())
+        if nothing_known and self._first_finds.get(k, 0) < FIRST_FIND_TRIES:
+            self._first_finds[k] = self._first_finds.get(k, 0) + 1
+            result = await self._first_find(pos, point)
+        else:
+            result = await self.tracker.focus(self.scope, pos.key, pos.x_um, pos.y_um, on_point=point)
+        if policy == "first" and result.found:
+            planes[pos.key] = result.z_um
+        return result.z_um, result
+
+    async def _first_find(self, pos: PlannedPosition, on_point: Callable[[FocusPoint], None]) -> FocusResult:
+        """Focus with nothing known yet: a sweep over the whole safe focus travel.
+
+        Homing leaves the objective at the bottom of its travel, far outside a normal
+        search range; this costs tens of frames once per time-lapse, after which the
+        tracker's focus surface predicts every other position.
+        """
+        from daemon.focus.autofocus import autofocus
+
+        f = self.profile.focus
+        result = await autofocus(
+            self.scope, centre_z_um=(f.z_min_um + f.z_safe_max_um) / 2.0, range_um=f.z_safe_max_um - f.z_min_um,
+            on_point=on_point,
+        )
+        result.message += " (first search of the time-lapse: whole focus travel)"
+        return self.tracker.record(pos.key, pos.x_um, pos.y_um, result)
+
+    async def _expose(
+        self, focus_z_um: float, result: FocusResult | None, done_planes: set[tuple[int, str]]
+    ) -> list[tuple[int, Frame, Position]]:
+        frames: list[tuple[int, Frame, Position]] = []
+        planes = z_planes_um(focus_z_um, self.plan)
+        scope = self.scope
+        for zi, z in enumerate(planes):
+            if all((zi, kind) in done_planes for kind in self.kinds):
+                continue
+            last, here = scope.last_frame, scope.last_position
+            if (
+                result is not None and result.found and len(planes) == 1 and last is not None and here is not None
+                and abs(here.z_um - z) < 1e-6 and last.exposure_ms == self.exposure_ms and last.gain_db == self.gain_db
+            ):
+                # Autofocus ended on a frame in this very plane at these settings: keep it
+                # rather than light the cells once more.
+                frames.append((zi, last, here))
+                continue
+            here = await scope.move_to(z_um=z)
+            frame = await scope.capture(exposure_ms=self.exposure_ms, gain_db=self.gain_db)
+            frames.append((zi, frame, here))
+        return frames
+
+    # -- confluence, in the background -------------------------------------------------
+
+    async def _queue_unanalysed(self) -> None:
+        """Analyse what a restart cut off: analysed-plane frames still without confluence."""
+        if self._confluence is None:
+            return
+        rows = await asyncio.to_thread(self.index.frames_awaiting_analysis, self.id, self.analysis_plane)
+        by_plane: dict[tuple[int, str], list[dict[str, Any]]] = {}
+        for r in rows:
+            by_plane.setdefault((r["tp"], r["key"]), []).append(r)
+        for (k, key), group in by_plane.items():
+            source = next((r for r in group if r["kind"] == "corrected"), group[0])
+            await self._analysis.put(_AnalysisJob(k, key, [r["id"] for r in group], None, source["path"]))
+
+    async def _analysis_worker(self) -> None:
+        import tifffile
+
+        while True:
+            job = await self._analysis.get()
+            try:
+                image = job.image
+                if image is None:
+                    image = await asyncio.to_thread(tifffile.imread, self.data_dir / job.path)
+                assert self._confluence is not None
+                result = await asyncio.to_thread(
+                    self._confluence, image, pixel_size_um=self.profile.optics.pixel_size_um
+                )
+                value = float(result.fraction)
+                await asyncio.to_thread(self.index.set_confluence, job.frame_ids, value)
+                self._emit("frame_analysis", tp=job.k, position=job.key, frame_ids=job.frame_ids, confluence=value)
+            except Exception as exc:  # noqa: BLE001 - a frame that cannot be analysed keeps its other metrics
+                log.exception("confluence of time point %d, position %s", job.k, job.key)
+                await self._alert("warning", "analysis", f"confluence of {job.key} at time point {job.k} failed: {exc}")
+            finally:
+                self._analysis.task_done()
+
+    async def _drain_analysis(self) -> None:
+        await self._analysis.join()
+
+    async def _update_culture_watch(self, k: int) -> None:
+        """Feed the well-level confluence of time point ``k`` to the culture watch."""
+        rows = await asyncio.to_thread(self.index.frames, self.id, k)
+        # One reading per site: its analysed plane (raw and corrected frames carry the same figures).
+        per_site: dict[str, dict[str, Any]] = {}
+        for f in rows:
+            best = per_site.get(f["key"])
+            if best is None or (best["confluence"] is None and f["confluence"] is not None):
+                per_site[f["key"]] = f
+        per_well: dict[str, list[dict[str, Any]]] = {}
+        for f in per_site.values():
+            if f["confluence"] is not None or f["focus_found"] is not None:
+                per_well.setdefault(f["well"], []).append(f)
+        for well, frames in per_well.items():
+            attempted = [f for f in frames if f["focus_found"] is not None]
+            focus_ok = not attempted or any(f["focus_found"] for f in attempted)
+            usable = [f["confluence"] for f in frames if f["confluence"] is not None and f["focus_found"] != 0]
+            value = statistics.fmean(usable) if usable else None
+            t_s = min(f["t_s"] for f in frames)
+            for alert in self.watch.update(well, t_s, value, focus_ok):
+                level = "info" if alert.kind == "confluence_reached" else "warning"
+                await self._alert(level, alert.kind, alert.message)
+
+    async def _save_resume_state(self, *, watch: bool = False) -> None:
+        parts: dict[str, Any] = {"tracker": self.tracker.to_dict(), "first_focus": self.first_focus}
+        if watch:
+            parts["watch"] = self.watch.to_dict()
+        with contextlib.suppress(OSError, sqlite3.DatabaseError):
+            await asyncio.to_thread(self.index.save_resume_state, self.id, **parts)
