@@ -8,9 +8,12 @@ its reading in a file so that time keeps passing (at its speed) while the daemon
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import os
+import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Protocol
 
@@ -26,6 +29,10 @@ class Clock(Protocol):
         """Sleep ``seconds`` of this clock's time."""
         ...
 
+    def paused(self) -> contextlib.AbstractContextManager[None]:
+        """Stop this clock while the block runs (only a simulated clock can)."""
+        ...
+
 
 class WallClock:
     speed = 1.0
@@ -35,6 +42,9 @@ class WallClock:
 
     async def sleep(self, seconds: float) -> None:
         await asyncio.sleep(max(0.0, seconds))
+
+    def paused(self) -> contextlib.AbstractContextManager[None]:
+        return contextlib.nullcontext()
 
 
 class ScaledClock:
@@ -64,10 +74,38 @@ class ScaledClock:
         self._sim_origin = sim_start
         self._real_origin = time.monotonic()
         self._offset_s = 0.0
+        self._lock = threading.Lock()  # now() is read from the controller emulator's thread too
+        self._held_real_s = 0.0  # real time spent paused, which does not count
+        self._pause_depth = 0
+        self._paused_at = 0.0
         self.save()
 
     def now(self) -> float:
-        return self._sim_origin + self._offset_s + (time.monotonic() - self._real_origin) * self.speed
+        with self._lock:
+            real = self._paused_at if self._pause_depth else time.monotonic()
+            return self._sim_origin + self._offset_s + (real - self._real_origin - self._held_real_s) * self.speed
+
+    @contextlib.contextmanager
+    def paused(self) -> Iterator[None]:
+        """Freeze simulated time while the block runs.
+
+        The simulated camera renders inside such a block: a real camera delivers its frame
+        in the exposure time, so the simulator's own computing must not age the culture,
+        move the stage or make a time point late (at 500x, 0.2 s of rendering would
+        otherwise be 100 simulated seconds).
+        """
+        with self._lock:
+            if self._pause_depth == 0:
+                self._paused_at = time.monotonic()
+            self._pause_depth += 1
+        try:
+            yield
+        finally:
+            with self._lock:
+                self._pause_depth -= 1
+                if self._pause_depth == 0:
+                    self._held_real_s += time.monotonic() - self._paused_at
+            self.save()
 
     def advance(self, seconds: float) -> None:
         """Jump forward (tests): simulated time passes without waiting."""

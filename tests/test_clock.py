@@ -43,3 +43,19 @@ def test_persisted_clock_counts_downtime(tmp_path: Path) -> None:
 def test_rejects_nonpositive_speed() -> None:
     with pytest.raises(ValueError, match="speed must be > 0"):
         ScaledClock(speed=0.0)
+
+
+def test_paused_clock_stands_still_then_resumes_without_a_jump(tmp_path: Path) -> None:
+    state = tmp_path / "sim-clock.json"
+    clock = ScaledClock(speed=1000.0, start_s=0.0, state_file=state)
+    with clock.paused():
+        frozen = clock.now()
+        time.sleep(0.05)  # 50 simulated seconds would pass if the clock ran
+        with clock.paused():  # nesting is allowed
+            assert clock.now() == frozen
+        assert clock.now() == frozen
+    after = clock.now()
+    assert 0.0 <= after - frozen < 20.0
+    # The saved state excludes the pause, so a restart does not count it either.
+    restarted = ScaledClock(speed=1000.0, start_s=0.0, state_file=state)
+    assert restarted.now() - clock.now() < 20.0

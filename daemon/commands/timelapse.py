@@ -112,7 +112,7 @@ class ProgressDisplay:
             self._line(f"  ALERT {event['level']}: {event['message']}")
         elif kind == "progress" and self.live and "index" in event:
             self.stream.write(
-                f"\r\033[K  time point {event['tp']}: position {event['index'] + 1}/{event['positions']} {event['position']}"
+                f"\r\033[K  time point {event['tp'] + 1}: position {event['index'] + 1}/{event['positions']} {event['position']}"
             )
             self.stream.flush()
         elif kind == "frame" and not self.quiet and not self.live:
@@ -126,17 +126,17 @@ class ProgressDisplay:
 
     def _time_point(self, event: Event) -> None:
         k = event["tp"]
-        of = f"/{self.count - 1}" if self.count else ""
+        of = f"/{self.count}" if self.count else ""  # shown counting from 1; stored from 0
         if event["status"] == "running":
             late = event.get("late_s") or 0.0
-            self._line(f"time point {k}{of} started {clock_text(event['started_s'])} UTC ({late:+.1f} s from plan)")
+            self._line(f"time point {k + 1}{of} started {clock_text(event['started_s'])} UTC ({late:+.1f} s from plan)")
         elif event["status"] == "missed":
-            self._line(f"time point {k}{of} missed (planned {clock_text(event['planned_s'])} UTC): {event.get('reason')}")
+            self._line(f"time point {k + 1}{of} missed (planned {clock_text(event['planned_s'])} UTC): {event.get('reason')}")
         else:
             took = (event["finished_s"] or 0.0) - (event["started_s"] or 0.0)
             why = f" - {event['reason']}" if event.get("reason") else ""
             self._line(
-                f"time point {k}{of} {event['status']}: {event['n_ok']} positions ok, {event['n_failed']} failed, "
+                f"time point {k + 1}{of} {event['status']}: {event['n_ok']} positions ok, {event['n_failed']} failed, "
                 f"{took:.1f} s{why}"
             )
 

@@ -75,16 +75,17 @@ class SimCamera:
             pos = self._position_source()
             lamp = float(self._lamp_source())
             try:
-                pixels = await asyncio.to_thread(
-                    self._world.render,
-                    pos.x_um,
-                    pos.y_um,
-                    pos.z_um,
-                    t_s=t_start,
-                    exposure_ms=exposure_ms,
-                    gain_db=gain_db,
-                    lamp_level=lamp,
-                )
+                with self._clock.paused():
+                    pixels = await asyncio.to_thread(
+                        self._world.render,
+                        pos.x_um,
+                        pos.y_um,
+                        pos.z_um,
+                        t_s=t_start,
+                        exposure_ms=exposure_ms,
+                        gain_db=gain_db,
+                        lamp_level=lamp,
+                    )
             except ValueError as exc:
                 raise CameraError(f"simulated camera could not render a frame: {exc}") from None
             self.frames_grabbed += 1
