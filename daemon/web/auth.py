@@ -1,0 +1,188 @@
+"""The access token: generated on first start, kept owner-only in the data folder.
+
+Every request that changes anything carries ``Authorization: Bearer <token>``. Viewing
+(GET) needs the token too unless the profile allows anonymous viewing. A browser that
+showed the token once gets a view cookie (an HMAC of the token, so a new token voids old
+cookies); it is good for viewing only, never for changes, so a forged cross-site form
+cannot move the stage. Tokens are compared in constant time, and a client that keeps
+sending wrong ones is locked out for a while.
+"""
+
+from __future__ import annotations
+
+import collections
+import contextlib
+import hashlib
+import hmac
+import os
+import secrets
+import stat
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+TOKEN_FILE = "access-token"
+TOKEN_BYTES = 32  # 256 bits from the OS's CSPRNG (secrets module)
+VIEW_COOKIE = "phasewatch_view"
+# Failed attempts allowed per client in the window before it is refused with 429.
+MAX_FAILURES = 10
+FAILURE_WINDOW_S = 60.0
+
+
+class TokenFileError(OSError):
+    pass
+
+
+def token_path(data_dir: Path) -> Path:
+    return Path(data_dir) / TOKEN_FILE
+
+
+def _write_new_token(path: Path) -> str:
+    token = secrets.token_urlsafe(TOKEN_BYTES)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.partial")
+    # O_EXCL + mode 0600 at creation: the token is never readable by others, not even briefly.
+    with contextlib.suppress(FileNotFoundError):
+        tmp.unlink()  # left by a crash between create and rename
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    with os.fdopen(fd, "w", encoding="ascii") as fh:
+        fh.write(token + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    return token
+
+
+def load_or_create_token(data_dir: Path, *, renew: bool = False) -> tuple[str, bool]:
+    """The token of ``data_dir`` (created when missing or ``renew``); returns (token, created).
+
+    A token file readable by group or others is tightened to 0600 with a warning, since
+    someone may have copied it with the wrong permissions.
+    """
+    path = token_path(data_dir)
+    if renew or not path.exists():
+        return _write_new_token(path), True
+    mode = stat.S_IMODE(path.stat().st_mode)
+    if mode & 0o077:
+        os.chmod(path, 0o600)
+        print(
+            f"phasewatch: warning: {path} was readable by others (mode {mode:04o}); set to 0600. "
+            "If others could read it, make a new token: phasewatch token --new",
+            file=sys.stderr,
+        )
+    token = path.read_text(encoding="ascii").strip()
+    if len(token) < 16:
+        raise TokenFileError(f"{path}: the access token is too short or empty; make a new one with phasewatch token --new")
+    return token, False
+
+
+def view_cookie_value(token: str) -> str:
+    return hmac.new(token.encode(), b"phasewatch view cookie", hashlib.sha256).hexdigest()
+
+
+class FailureLimiter:
+    """Counts failed token attempts per client over a sliding window (bounded memory)."""
+
+    def __init__(
+        self, max_failures: int = MAX_FAILURES, window_s: float = FAILURE_WINDOW_S,
+        clock: Callable[[], float] = time.monotonic, max_clients: int = 4096,
+    ) -> None:
+        self.max_failures = max_failures
+        self.window_s = window_s
+        self._clock = clock
+        self._max_clients = max_clients
+        self._failures: collections.OrderedDict[str, collections.deque[float]] = collections.OrderedDict()
+
+    def _recent(self, client: str) -> collections.deque[float]:
+        now = self._clock()
+        q = self._failures.get(client)
+        if q is None:
+            return collections.deque()
+        while q and now - q[0] > self.window_s:
+            q.popleft()
+        if not q:
+            del self._failures[client]
+        return q
+
+    def blocked_for_s(self, client: str) -> float:
+        """Seconds until ``client`` may try again (0 when it may now)."""
+        q = self._recent(client)
+        if len(q) < self.max_failures:
+            return 0.0
+        return max(0.0, self.window_s - (self._clock() - q[0]))
+
+    def reset(self) -> None:
+        self._failures.clear()
+
+    def fail(self, client: str) -> None:
+        q = self._failures.setdefault(client, collections.deque())
+        self._failures.move_to_end(client)
+        q.append(self._clock())
+        while len(q) > self.max_failures:
+            q.popleft()
+        while len(self._failures) > self._max_clients:
+            self._failures.popitem(last=False)
+
+
+class Authenticator:
+    """Decides whether a request may view or change, from its header or view cookie.
+
+    With ``token_file`` a new token written there (``phasewatch token --new``) takes effect
+    at the next request, and the old one stops working at once.
+    """
+
+    def __init__(
+        self, token: str, *, anonymous_viewing: bool, limiter: FailureLimiter | None = None,
+        token_file: Path | None = None,
+    ) -> None:
+        self._set(token)
+        self.anonymous_viewing = anonymous_viewing
+        self.limiter = limiter or FailureLimiter()
+        self._file = token_file
+        self._stamp = self._file_stamp()
+
+    def _set(self, token: str) -> None:
+        self._token = token.encode()
+        self._cookie = view_cookie_value(token).encode()
+
+    def _file_stamp(self) -> tuple[int, int] | None:
+        if self._file is None:
+            return None
+        try:
+            st = self._file.stat()
+        except OSError:
+            return None
+        return st.st_mtime_ns, st.st_ino
+
+    def _reload_if_changed(self) -> None:
+        stamp = self._file_stamp()
+        if stamp is None or stamp == self._stamp or self._file is None:
+            return
+        try:
+            token = self._file.read_text(encoding="ascii").strip()
+        except OSError:
+            return  # keep the token we have rather than lock everyone out
+        if len(token) >= 16:
+            self._set(token)
+            self._stamp = stamp
+
+    def check_bearer(self, header: str | None) -> bool | None:
+        """True: right token; False: a token was given and is wrong; None: none given."""
+        self._reload_if_changed()
+        if not header:
+            return None
+        scheme, _, value = header.partition(" ")
+        if scheme.lower() != "bearer" or not value.strip():
+            return False
+        return hmac.compare_digest(value.strip().encode(), self._token)
+
+    def check_cookie(self, value: str | None) -> bool | None:
+        self._reload_if_changed()
+        if not value:
+            return None
+        return hmac.compare_digest(value.encode(), self._cookie)
+
+    @property
+    def cookie_value(self) -> str:
+        return self._cookie.decode()
