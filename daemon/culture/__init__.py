@@ -1,0 +1,1 @@
+"""Culture analysis: confluence, cell counts, growth curves and alerts from phase-contrast frames."""
