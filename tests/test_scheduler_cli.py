@@ -75,6 +75,11 @@ def test_run_list_show_and_export(tmp_path: Path, small_profile: Path, capsys: p
         rows = list(csv.DictReader(fh))
     assert len(rows) == 8 and {r["well"] for r in rows} == {"B2", "C3"}
     assert all(float(r["focus_score"]) > 0 for r in rows)
+    with open(out_dir / "growth.csv", newline="") as fh:
+        growth = list(csv.DictReader(fh))
+    # Two time points per well are too few for a growth fit: said so, never a doubling time.
+    assert {g["well"] for g in growth} == {"B2", "C3"}
+    assert all(g["ok"] == "no" and g["doubling_time_h"] == "" and g["note"] for g in growth)
     stacks = sorted(out_dir.glob("*.ome.tif"))
     assert [p.name for p in stacks] == ["B2-1_raw.ome.tif", "B2-2_raw.ome.tif", "C3-1_raw.ome.tif", "C3-2_raw.ome.tif"]
     with tifffile.TiffFile(stacks[0]) as tif:

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
-import statistics
 from typing import Any
+
+from daemon.culture.series import analysed_frames, well_series
 
 
 def latest_per_position(frames: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -22,17 +23,9 @@ def latest_per_position(frames: list[dict[str, Any]]) -> list[dict[str, Any]]:
 
 def series_of(frames: list[dict[str, Any]], t0_s: float) -> dict[str, Any]:
     """Focus score and confluence over time, per position and per well, with growth fits per well."""
-    from daemon.culture.growth import fit_growth
+    from daemon.culture.growth import fit_plate
 
-    chosen: dict[tuple[str, int], dict[str, Any]] = {}
-    for f in frames:
-        if f["status"] != "ok":
-            continue
-        k = (f["key"], f["tp"])
-        cur = chosen.get(k)
-        rank = (f["confluence"] is not None, f["kind"] == "corrected")
-        if cur is None or rank > (cur["confluence"] is not None, cur["kind"] == "corrected"):
-            chosen[k] = f
+    chosen = analysed_frames(frames)
     positions: dict[str, dict[str, list[Any]]] = {}
     for (key, _tp), f in sorted(chosen.items(), key=lambda item: (item[0][0], item[0][1])):
         s = positions.setdefault(key, {"well": f["well"], "tp": [], "t_h": [], "focus_score": [], "confluence": [], "z_um": []})  # type: ignore[dict-item]
@@ -41,15 +34,10 @@ def series_of(frames: list[dict[str, Any]], t0_s: float) -> dict[str, Any]:
         s["focus_score"].append(f["focus_score"])
         s["confluence"].append(f["confluence"])
         s["z_um"].append(round(f["z_um"], 3))
-    wells: dict[str, dict[str, Any]] = {}
-    per_well: dict[str, dict[int, list[tuple[float, float]]]] = {}
-    for (_key, tp), f in chosen.items():
-        if f["confluence"] is not None:
-            per_well.setdefault(f["well"], {}).setdefault(tp, []).append((f["t_s"], f["confluence"]))
-    for well, by_tp in sorted(per_well.items()):
-        tps = sorted(by_tp)
-        times = [min(t for t, _ in by_tp[tp]) for tp in tps]
-        values = [statistics.fmean(c for _, c in by_tp[tp]) for tp in tps]
-        fit = fit_growth(times, values).to_dict()
-        wells[well] = {"t_h": [round((t - t0_s) / 3600.0, 5) for t in times], "confluence": values, "growth": fit}
+    series = well_series(chosen)
+    fits = fit_plate(series)
+    wells = {
+        well: {"t_h": [round((t - t0_s) / 3600.0, 5) for t in times], "confluence": values, "growth": fits[well].to_dict()}
+        for well, (times, values) in series.items()
+    }
     return {"positions": positions, "wells": wells}
