@@ -51,6 +51,11 @@ def test_passed_peak_waits_for_a_clear_fall() -> None:
     assert not passed_peak([10, 30, 60, 40])  # one lower point only
     assert passed_peak([10, 30, 60, 25, 11])  # up, over, back near the floor
     assert passed_peak([60, 25, 11])  # started on the peak
+    # Frames before ``first`` were judged already: they set the floor, and a new peak
+    # must rise above the last of them (not just continue its falling side).
+    assert not passed_peak([100, 30, 10], first=1)
+    assert passed_peak([8, 30, 60, 25], first=1)
+    assert not passed_peak([8, 300, 60, 25], first=2)
 
 
 def test_surface_recovers_a_tilted_sagging_plate_despite_an_outlier() -> None:
@@ -76,12 +81,82 @@ def test_surface_model_grows_with_the_points() -> None:
     assert fit_focus_surface([], tolerance_um=10.0) is None
     one = fit_focus_surface([SurfacePoint(0, 0, 100)], tolerance_um=10.0)
     assert one is not None and one.kind == "constant" and one.z_um(5000, 5000) == pytest.approx(100)
+    # Collinear points fix the tilt along their line only: across it the surface is level.
     line = fit_focus_surface([SurfacePoint(x, 0, 100 + x / 1000) for x in (0, 9000, 18000)], tolerance_um=10.0)
-    assert line is not None and line.kind == "constant"  # collinear: a plane is undetermined
+    assert line is not None and line.kind == "line"
+    assert line.z_um(13500, 0) == pytest.approx(113.5, abs=1e-6)
+    assert line.z_um(13500, 40000) == pytest.approx(113.5, abs=1e-6)
+    assert line.beyond_support_mm(13500, 40000) == pytest.approx(40.0)
+    assert line.beyond_support_mm(13500, 0) == pytest.approx(0.0, abs=1e-9)
     tri = [SurfacePoint(0, 0, 100), SurfacePoint(9000, 0, 109), SurfacePoint(0, 9000, 91)]
     plane = fit_focus_surface(tri, tolerance_um=10.0)
     assert plane is not None and plane.kind == "plane"
-    assert plane.z_um(9000, 9000) == pytest.approx(100.0, abs=1e-6)
+    assert plane.z_um(3000, 3000) == pytest.approx(100.0, abs=1e-6)  # z = 100 + x/1000 - y/1000
+    assert plane.z_um(9000, 9000) == pytest.approx(100.0, abs=1e-6)  # followed one extent past the points
+
+
+def sim_like_plate(x_um: float, y_um: float) -> float:
+    """A focal plane like the simulated plate's (drivers/sim/focal.py with hw_profiles/sim.toml:
+    0.8 and -0.5 um/mm of tilt, 12 um of sag over a 96-well grid centred at 63.9, 42.7 mm)."""
+    u, v = (x_um - 63_880) / 1000, (y_um - 42_740) / 1000
+    return 1500 + 0.8 * u - 0.5 * v + 12.0 * ((u / 49.5) ** 2 + (v / 31.5) ** 2)
+
+
+WELL_X_UM = [14_380 + 9_000 * c for c in range(12)]  # ANSI/SLAS 4-2004 96-well pitch, 9 mm
+ROW_A_Y_UM, ROW_H_Y_UM = 11_240, 11_240 + 7 * 9_000
+
+
+def test_a_single_row_is_not_extrapolated_across_the_plate() -> None:
+    # Reported: after imaging only row A, predictions for row H were off by 0.37-1.5 mm.
+    # Row A plus one well of row H fixes no curvature across the rows (two rows only):
+    # no quadratic, and predictions stay within the plate's own focal range.
+    rng = np.random.default_rng(11)
+    pts = [SurfacePoint(x, ROW_A_Y_UM, sim_like_plate(x, ROW_A_Y_UM) + rng.normal(0, 1.0)) for x in WELL_X_UM]
+    row_a = fit_focus_surface(pts, tolerance_um=10.0)
+    assert row_a is not None and row_a.kind == "line"
+    for x in WELL_X_UM:
+        truth_h = sim_like_plate(x, ROW_H_Y_UM)
+        # Level across the row: off by the plate's change from row A to H (tilt + sag), no more.
+        assert abs(row_a.z_um(x, ROW_H_Y_UM) - truth_h) <= 40.0
+        assert row_a.beyond_support_mm(x, ROW_H_Y_UM) == pytest.approx(63.0, abs=0.01)
+    pts.append(SurfacePoint(WELL_X_UM[10], ROW_H_Y_UM, sim_like_plate(WELL_X_UM[10], ROW_H_Y_UM)))
+    both = fit_focus_surface(pts, tolerance_um=10.0)
+    assert both is not None and both.kind == "plane"  # 13 points, yet the quadratic is undetermined
+    for x in WELL_X_UM:
+        assert abs(both.z_um(x, ROW_H_Y_UM) - sim_like_plate(x, ROW_H_Y_UM)) <= 15.0
+
+
+def test_a_tilt_measured_inside_one_well_is_not_carried_across_the_plate() -> None:
+    # Four sites 1 mm apart in well A1, each focused to within a quarter depth of field
+    # (2.6 um at 10x/0.25): the tilt they suggest is mostly noise, so it must not be
+    # followed 60 mm out; there the surface stays level and says how far it is guessing.
+    rng = np.random.default_rng(5)
+    sites = [(WELL_X_UM[0] + dx, ROW_A_Y_UM + dy) for dx in (-500, 500) for dy in (-500, 500)]
+    pts = [SurfacePoint(x, y, sim_like_plate(x, y) + rng.uniform(-2.6, 2.6)) for x, y in sites]
+    fit = fit_focus_surface(pts, tolerance_um=10.0)
+    assert fit is not None
+    far_x, far_y = WELL_X_UM[7], ROW_H_Y_UM
+    mean_z = float(np.mean([p.z_um for p in pts]))
+    assert abs(fit.z_um(far_x, far_y) - mean_z) <= 2 * 2.6 + 2.0  # level beyond the reach
+    assert fit.beyond_support_mm(far_x, far_y) > 60.0
+
+
+@settings(max_examples=40, deadline=None)
+@given(rows=st.integers(1, 3), noise_um=st.floats(0.0, 2.6), seed=st.integers(0, 2**16))
+def test_predictions_anywhere_on_the_plate_stay_near_the_plate(rows: int, noise_um: float, seed: int) -> None:
+    # Whatever rows were imaged first, a prediction anywhere on the plate is off by at most
+    # about what the plate itself changes beyond them (tilt 0.5 um/mm over the 63 mm from
+    # row A to H, plus a row's 12 um of sag) and the noise: never the hundreds of um an
+    # undetermined or unbounded polynomial gives.
+    rng = np.random.default_rng(seed)
+    pts = [SurfacePoint(x, ROW_A_Y_UM + 9000 * r, 0.0) for r in range(rows) for x in WELL_X_UM]
+    pts = [SurfacePoint(p.x_um, p.y_um, sim_like_plate(p.x_um, p.y_um) + rng.uniform(-noise_um, noise_um)) for p in pts]
+    fit = fit_focus_surface(pts, tolerance_um=10.0)
+    assert fit is not None
+    for r in range(8):
+        for x in WELL_X_UM[::3]:
+            y = ROW_A_Y_UM + 9000 * r
+            assert abs(fit.z_um(x, y) - sim_like_plate(x, y)) <= 0.5 * 63 + 12 + 2 * noise_um
 
 
 def found(z_um: float, t_s: float) -> FocusResult:

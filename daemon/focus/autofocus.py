@@ -10,15 +10,21 @@ Laplacian amplifies most). Two scores per frame, both the chosen metric:
   steps of 2.25·d cannot step over.
 
 Phase-contrast focus curves are not simple bells: defocused cells show contrast of their
-own, so the main peak is flanked by lower side lobes a few depths of field out. The
-sweep stops only at a coarse peak that stands well above the lowest coarse score, and
-a coarse peak whose refinement shows no score peak standing out over the curve's floor
-(a side lobe) is passed over: the sweep goes on upwards.
+own, so the main peak is flanked by lower side lobes a few depths of field out, and far
+from focus (hundreds of um) the score can sink well below its level near focus. So a
+peak is judged *locally*, never against the lowest score of the whole curve: the
+sharpest frame counts as the focus only when the score falls to at most half of it on
+*both* sides, 1.25 to 3 depths of field out (:func:`judge_peak` takes a frame on a
+side that has none). The in-focus peak of the score is about one depth of field wide and
+stands several times over its surroundings; a side lobe, a noise wiggle, a window edge
+or a monotonic or flat curve does not. A coarse peak whose refinement fails that test is
+passed over: the sweep goes on upwards.
 
 The search: an upward coarse sweep at 2.25·d steps, stopped once it has gone over a
 clear peak; a Gaussian fit of the coarse peak; two frames half a depth of field either
-side of it; a Gaussian fit of the score for the sub-step peak; and a last frame at the
-chosen plane to confirm it. Every frame is taken on the way up where it can be, and the
+side of it; the flank frames that show the score falling on both sides; a Gaussian fit
+of the score over its local floor for the sub-step peak; and a last frame at the chosen
+plane to confirm it. Every frame is taken on the way up where it can be, and the
 driver makes any lower target an approach from below, so the drive's backlash is always
 taken up the same way. A search that finds no real peak says so, and the focus goes back
 to the last good plane.
@@ -54,7 +60,15 @@ COARSE_BIN_FACTOR = 3
 
 PEAK_OVER_FLOOR = 2.5  # a coarse peak must stand this far above the lowest coarse score
 PASSED_PEAK_FALL = 2.0  # the sweep has passed the peak once a score falls this far below it
-MIN_CONFIDENCE = 0.5  # score peak at least 2x the curve's floor (confidence = 1 - floor/peak)
+# Confidence = 1 - flank/peak, flank = the higher of the lowest scores 1.25-3 d either
+# side of the peak's centre: found only when the score falls to half the peak on both
+# sides. Measured on the simulated scope (4x, 10x, 20x; sparse and dense fields): the
+# in-focus peak falls to 0.2-0.35 of its height 1 d from focus (1.25 d from a centre
+# found to d/4), while side lobes and far-defocus wiggles fall by 10-40 % at most.
+MIN_CONFIDENCE = 0.5
+FLANK_NEAR_DOF = 1.25
+FLANK_FAR_DOF = 3.0
+FLANK_PROBE_DOF = 1.5  # where judge_peak takes a frame on a side that has none
 # Brightest mean frame level (fraction of full scale) that still counts as "lamp off": the
 # black level of budget cameras sits at a few per cent of full scale (common practice).
 DARK_LEVEL = 0.05
@@ -80,8 +94,10 @@ class FocusResult:
 
     ``score`` is the focus score of the confirming frame at ``z_um`` (NaN when no frame
     was taken there); after a successful run ``scope.last_frame`` is that frame, so a
-    caller that wants an image at the focused plane can use it. ``floor`` is the curve's
-    lowest score and ``width_um`` the fitted Gaussian width of its peak.
+    caller that wants an image at the focused plane can use it. ``floor`` is the score
+    the peak stands out of (the higher of the lowest scores 1.25-3 depths of field
+    either side of it), ``confidence`` = 1 - floor/peak, and ``width_um`` the fitted Gaussian
+    width of the peak.
     """
 
     found: bool
@@ -266,19 +282,23 @@ def gaussian_peak(z_um: Sequence[float], scores: Sequence[float], floor: float) 
     return PeakFit(zref + mu, height, math.sqrt(-1 / (2 * c2)))
 
 
-def passed_peak(coarse: Sequence[float], scores: Sequence[float] | None = None) -> bool:
+def passed_peak(coarse: Sequence[float], scores: Sequence[float] | None = None, first: int = 0) -> bool:
     """True once a sweep has clearly gone over a peak: the highest coarse score so far
-    stands :data:`PEAK_OVER_FLOOR` times above the lowest, and the newest frame has fallen
-    :data:`PASSED_PEAK_FALL` times below the peak frame in the coarse score or, when the
-    peak frame is also the best by the (narrower) score, in the score."""
-    if len(coarse) < 2:
+    (among frames from index ``first`` on: earlier ones were judged already, and the
+    peak must rise above the last of them) stands :data:`PEAK_OVER_FLOOR` times above
+    the lowest, and the newest frame has fallen :data:`PASSED_PEAK_FALL` times below the
+    peak frame in the coarse score or, when the peak frame is also the best by the
+    (narrower) score, in the score."""
+    if len(coarse) - first < 1 or len(coarse) < 2:
         return False
-    k = int(np.argmax(coarse))
+    k = first + int(np.argmax(coarse[first:]))
     if k == len(coarse) - 1 or coarse[k] < PEAK_OVER_FLOOR * min(coarse):
         return False
+    if first > 0 and coarse[k] <= coarse[first - 1]:
+        return False  # still the falling side of the peak judged before
     if coarse[-1] <= coarse[k] / PASSED_PEAK_FALL:
         return True
-    if scores is None or int(np.argmax(scores)) != k:
+    if scores is None or first + int(np.argmax(scores[first:])) != k:
         return False
     return scores[-1] <= scores[k] / PASSED_PEAK_FALL
 
@@ -291,28 +311,32 @@ def sweep_planes(plan: FocusPlan, lo_um: float, hi_um: float) -> list[float]:
 
 async def coarse_sweep(
     probe: FocusProbe, planes: Sequence[float], prior: Sequence[Sample] = ()
-) -> tuple[float | None, int]:
+) -> tuple[float | None, list[Sample]]:
     """Frames at ``planes`` in order (upwards) until the coarse score has gone over a peak.
 
     Returns the coarse peak's z (Gaussian fit of the best frame and its neighbours), or
-    None when no peak stood out, and how many of ``planes`` were used. ``prior`` frames
-    (from an earlier part of the sweep) count for the floor but cannot be the peak.
+    None when no peak stood out, and the sweep frames taken (``len`` of it: how many of
+    ``planes`` were used). ``prior`` frames (from an earlier part of the sweep, whose
+    peak was judged already) count for the floor and as the lower neighbour of a peak,
+    but cannot be the peak.
     """
     taken: list[Sample] = list(prior)
-    used = 0
+    first = len(taken)
     for z in planes:
         taken.append(await probe.at(z))
-        used += 1
-        if passed_peak([s.coarse for s in taken], [s.score for s in taken]):
+        if passed_peak([s.coarse for s in taken], [s.score for s in taken], first):
             break
+    new = taken[first:]
+    if not new:
+        return None, new
     coarse = [s.coarse for s in taken]
-    k = int(np.argmax(coarse))
-    if k < len(prior) or coarse[k] < PEAK_OVER_FLOOR * min(coarse):
-        return None, used
+    k = first + int(np.argmax(coarse[first:]))
+    if coarse[k] < PEAK_OVER_FLOOR * min(coarse) or (first > 0 and coarse[k] <= coarse[first - 1]):
+        return None, new
     fit = None
     if 0 < k < len(taken) - 1:
         fit = gaussian_peak([s.z_um for s in taken[k - 1 : k + 2]], coarse[k - 1 : k + 2], 0.98 * min(coarse))
-    return (fit.z_um if fit is not None else taken[k].z_um), used
+    return (fit.z_um if fit is not None else taken[k].z_um), new
 
 
 @dataclasses.dataclass
@@ -367,10 +391,79 @@ async def refine(
         await probe.at(target)
     else:
         return RefineOutcome(None, best, "unbracketed")
-    base = floor if floor is not None else min(s.score for s in probe.samples)
-    fit_set.sort(key=lambda s: s.z_um)
-    fit = gaussian_peak([s.z_um for s in fit_set], [s.score for s in fit_set], 0.98 * base)
-    return RefineOutcome(fit, best, "")
+    return RefineOutcome(fit_peak(probe.samples, best, plan), best, "")
+
+
+def fit_peak(samples: Sequence[Sample], best: Sample, plan: FocusPlan) -> PeakFit | None:
+    """:func:`gaussian_peak` of the frames within the fit width of the sharpest one, over
+    the local floor (the lowest score within :data:`FLANK_FAR_DOF` of it): the background
+    the peak stands on, not the far-defocus minimum of the whole curve."""
+    near = [s for s in samples if abs(s.z_um - best.z_um) <= FLANK_FAR_DOF * plan.dof_um]
+    fit_set = sorted((s for s in near if abs(s.z_um - best.z_um) <= plan.fit_half_width_um), key=lambda s: s.z_um)
+    floor = min(s.score for s in near)
+    return gaussian_peak([s.z_um for s in fit_set], [s.score for s in fit_set], 0.98 * floor)
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class PeakVerdict:
+    """How far the sharpest frame stands out of its own neighbourhood.
+
+    ``lower``/``upper``: the lowest score 1.25-3 depths of field below/above the peak's
+    centre (None: no frame there, as at a focus limit). ``confidence`` is
+    1 - max(lower, upper)/peak, and 0 when a side is missing, so a peak that cannot be
+    seen to fall on both sides (a monotonic curve, a window edge, a limit) is never
+    taken for the focus.
+    """
+
+    peak: float
+    lower: float | None
+    upper: float | None
+
+    @property
+    def floor(self) -> float:
+        sides = [v for v in (self.lower, self.upper) if v is not None]
+        return max(sides) if sides else float("nan")
+
+    @property
+    def confidence(self) -> float:
+        if self.lower is None or self.upper is None or not self.peak > 0:
+            return 0.0
+        return max(0.0, 1.0 - self.floor / self.peak)
+
+
+def peak_centre_um(samples: Sequence[Sample], best: Sample, plan: FocusPlan) -> float:
+    """Where the peak lies: its :func:`fit_peak` vertex, else the sharpest frame (which
+    may sit up to half a bracket step off the top)."""
+    fit = fit_peak(samples, best, plan)
+    return fit.z_um if fit is not None else best.z_um
+
+
+def flanks(samples: Sequence[Sample], best: Sample, plan: FocusPlan, centre_um: float | None = None) -> PeakVerdict:
+    """The :class:`PeakVerdict` of ``best`` (a peak centred at ``centre_um``, default
+    :func:`peak_centre_um`) from the frames already taken."""
+    c = peak_centre_um(samples, best, plan) if centre_um is None else centre_um
+    # The frames' z is what the drive reports, a hair off the planned plane.
+    near, far = (FLANK_NEAR_DOF - 0.02) * plan.dof_um, FLANK_FAR_DOF * plan.dof_um
+    below = [s.score for s in samples if near <= c - s.z_um <= far]
+    above = [s.score for s in samples if near <= s.z_um - c <= far]
+    return PeakVerdict(best.score, min(below) if below else None, min(above) if above else None)
+
+
+async def judge_peak(probe: FocusProbe, best: Sample) -> PeakVerdict:
+    """Check that ``best`` is a real peak: a frame :data:`FLANK_PROBE_DOF` out from the
+    peak's centre on each side that has none 1.25-3 d out (inside the focus limits: a side
+    with no room stays unknown), then :func:`flanks`. May reach past the searched range,
+    never past the limits."""
+    plan = probe.plan
+    centre = peak_centre_um(probe.samples, best, plan)
+    verdict = flanks(probe.samples, best, plan, centre)
+    for missing, sign in ((verdict.lower is None, -1.0), (verdict.upper is None, 1.0)):
+        if not missing:
+            continue
+        z = plan.clamp(centre + sign * FLANK_PROBE_DOF * plan.dof_um)
+        if abs(z - centre) >= FLANK_NEAR_DOF * plan.dof_um:
+            await probe.at(z)
+    return flanks(probe.samples, best, plan, centre)
 
 
 def _next_refine_z(window: list[Sample], best: Sample, has_above: bool, floor: float, a: float) -> float:
@@ -395,24 +488,29 @@ async def conclude(
     *,
     fallback_z_um: float,
     fallback_name: str,
-    floor: float | None = None,
     confirm: bool = True,
 ) -> FocusResult:
-    """Decide found / not found; go to the plane (taking the confirming frame) or back."""
+    """Decide found / not found; go to the plane (taking the confirming frame) or back.
+
+    Found needs a bracketed peak (no edge) that :func:`judge_peak` shows standing out of
+    its own neighbourhood on both sides (confidence >= :data:`MIN_CONFIDENCE`), and a
+    confirming frame at the chosen plane that keeps most of the peak's height.
+    """
     samples = probe.samples
-    scores = [s.score for s in samples]
-    base = floor if floor is not None else (min(scores) if scores else float("nan"))
-    # Confidence is the prominence of the chosen peak over the curve's floor.
-    top = outcome.best.score if outcome is not None else (max(scores) if scores else float("nan"))
-    confidence = max(0.0, 1.0 - base / top) if scores and top > 0 else 0.0
+    verdict: PeakVerdict | None = None
+    if outcome is not None and not outcome.edge:
+        verdict = await judge_peak(probe, outcome.best)
+    elif samples:
+        verdict = flanks(samples, outcome.best if outcome is not None else max(samples, key=lambda s: s.score), probe.plan)
+    confidence = verdict.confidence if verdict is not None else 0.0
+    base = verdict.floor if verdict is not None else float("nan")
     reason = ""
     if not samples:
         reason = "no frames were taken"
     elif (level := max(s.level for s in samples)) < DARK_LEVEL:
         reason = f"frames are dark (mean level {100 * level:.1f} % of full scale): lamp off or exposure too short"
-    elif confidence < MIN_CONFIDENCE or outcome is None:
-        reason = (f"the focus curve has no real peak (confidence {confidence:.2f} < {MIN_CONFIDENCE}): "
-                  "empty field, bubble or debris?")
+    elif outcome is None:
+        reason = f"the focus curve has no real peak (confidence {confidence:.2f}): empty field, bubble or debris?"
     elif outcome.edge == "upper":
         reason = ("the sharpest frame is at the safe focus limit: the focal plane may lie above it"
                   if outcome.best.z_um >= probe.plan.z_max_um - 1e-6 else
@@ -423,15 +521,21 @@ async def conclude(
         reason = ("the sharpest frame is at the lowest focus position: the focal plane may lie below it"
                   if outcome.best.z_um <= probe.plan.z_min_um + 1e-6 else
                   "the sharpest frame is at the bottom of the searched range")
+    elif verdict is not None and (verdict.lower is None or verdict.upper is None):
+        reason = "the sharpest frame is too close to a focus limit to see the score fall on both sides"
+    elif confidence < MIN_CONFIDENCE:
+        reason = (f"the sharpest frame does not stand out of its neighbours on both sides (confidence "
+                  f"{confidence:.2f} < {MIN_CONFIDENCE}): a side lobe, or an empty field, bubble or debris?")
     if reason:
         return await _give_up(probe, reason, fallback_z_um, fallback_name, confidence, base)
 
     assert outcome is not None
-    z_target = outcome.fit.z_um if outcome.fit is not None else outcome.best.z_um
-    width = outcome.fit.sigma_um if outcome.fit is not None else float("nan")
+    fit = fit_peak(probe.samples, outcome.best, probe.plan)
+    z_target = fit.z_um if fit is not None else outcome.best.z_um
+    width = fit.sigma_um if fit is not None else float("nan")
     if not confirm:
         pos = await probe.scope.move_to(z_um=probe.plan.clamp(z_target))
-        height = outcome.fit.height if outcome.fit is not None else outcome.best.score
+        height = fit.height if fit is not None else outcome.best.score
         return _found(probe, pos.z_um, height, confidence, base, width, "focus found (not confirmed by a frame)")
     final = await probe.at(z_target)
     message = "focus found"
@@ -491,33 +595,28 @@ async def cold_search(
 ) -> FocusResult:
     """Coarse sweep over [lo, hi], refinement, decision (shared by autofocus and tracking).
 
-    A coarse peak whose refinement shows no real peak of the score (a side lobe of the
-    focus curve: defocused cells have contrast too) is passed over, and the sweep goes on
-    upwards from where it stopped.
+    A coarse peak whose refinement shows no real peak of the score (:func:`judge_peak`:
+    a side lobe of the focus curve, since defocused cells have contrast too, or a wiggle
+    far from focus) is passed over, and the sweep goes on upwards from where it stopped.
     """
     plan = probe.plan
     planes = sweep_planes(plan, lo_um, hi_um)
     used = 0
     outcome: RefineOutcome | None = None
+    last_sweep: list[Sample] = []
     while used < len(planes):
-        prior = probe.samples[-1:] if used else []
-        coarse_z, n = await coarse_sweep(probe, planes[used:], prior)
-        used += n
+        coarse_z, swept = await coarse_sweep(probe, planes[used:], last_sweep[-1:])
+        used += len(swept)
+        last_sweep = swept or last_sweep
         if coarse_z is None:
             break
         outcome = await refine(probe, coarse_z, reach_um=plan.coarse_step_um)
         if outcome.edge and lo_um + 1e-6 < outcome.best.z_um < hi_um - 1e-6:
             # Inside the range, so not an edge of the search: follow the peak further.
             outcome = await refine(probe, outcome.best.z_um, reach_um=plan.coarse_step_um)
-        if not outcome.edge and _standing_out(probe, outcome.best):
+        if not outcome.edge and (await judge_peak(probe, outcome.best)).confidence >= MIN_CONFIDENCE:
             break
     return await conclude(probe, outcome, fallback_z_um=fallback_z_um, fallback_name=fallback_name, confirm=confirm)
-
-
-def _standing_out(probe: FocusProbe, best: Sample) -> bool:
-    """The score peak is real: at least 1/(1 - MIN_CONFIDENCE) times the curve's floor."""
-    floor = min(s.score for s in probe.samples)
-    return best.score > 0 and 1.0 - floor / best.score >= MIN_CONFIDENCE
 
 
 async def autofocus(

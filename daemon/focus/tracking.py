@@ -6,10 +6,15 @@ which all positions' planes have been moving lately (a warming incubator moves e
 position alike). A position never focused before is predicted from the focus surface
 fitted over the positions focused so far (tilt and sag of the vessel), and searched with
 a short coarse sweep around that prediction, which tells the main focus peak from its
-side lobes. A position seen before gets a bracket of a few frames around the prediction
-(:func:`~daemon.focus.autofocus.refine`); when that shows no peak as high as the
-position's last one, the search widens to a coarse sweep around the prediction, and as
-a last resort to the whole cold range.
+side lobes; the farther the position lies from the positions the surface was fitted to,
+the wider that sweep (the surface is level past its reach, and a plate's tilt and sag
+add up with distance). A position seen before gets a bracket of a few frames around the
+prediction (:func:`~daemon.focus.autofocus.refine`); when that shows no real peak as
+high as the position's last one, the search widens to a coarse sweep around the
+prediction that also covers the last plane (the drift may have stopped), and as a last
+resort to the whole cold range. Every "found" is judged by
+:func:`~daemon.focus.autofocus.conclude`: the peak must stand out of its own
+neighbourhood on both sides.
 """
 
 from __future__ import annotations
@@ -44,12 +49,32 @@ TRACK_REACH_DOF = 4.0
 # coarse sweep around the prediction tells the main peak from its side lobes.
 NEW_KEY_HALF_RANGE_DOF = 4.0
 WIDEN_HALF_RANGE_DOF = 8.0
+# How much the focal plane may change per mm of stage travel past the positions the
+# focus surface was fitted to: plate tilt in its holder plus bottom sag, about 1 um/mm
+# on a budget stage (from memory; the simulated plate has 0.8 and 0.5 um/mm of tilt and
+# 12 um of sag).
+UNSUPPORTED_SLOPE_UM_PER_MM = 1.0
 # A tracked peak must keep this share of the position's last peak score; a side lobe of
 # the focus curve (defocused cells) reaches about a quarter of it.
 PEAK_KEEP = 0.5
 # Drift-rate samples older than this many revisit intervals no longer describe the trend.
 TREND_HORIZON_INTERVALS = 2.0
 STATE_VERSION = 1
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class Prediction:
+    """Where a position should be in focus, and how far off that may be.
+
+    ``source`` is "last plane" (its own last plane moved by the drift trend) or
+    "surface" (the focus surface); ``spread_um`` is the part of the prediction that
+    rests on extrapolation: the trend's correction for a known position, the unsupported
+    distance times :data:`UNSUPPORTED_SLOPE_UM_PER_MM` for a new one.
+    """
+
+    z_um: float
+    source: str
+    spread_um: float
 
 
 @dataclasses.dataclass
@@ -59,7 +84,7 @@ class KeyState:
     x_um: float
     y_um: float
     planes: list[tuple[float, float]] = dataclasses.field(default_factory=list)  # (t_s, z_um), found only
-    floor: float | None = None  # focus-score floor of its last full curve
+    floor: float | None = None  # the score its last peak stood out of (PeakVerdict.floor)
     peak: float | None = None  # focus score at its last plane
 
     @property
@@ -107,15 +132,24 @@ class FocusTracker:
         ]
         return fit_focus_surface(points, tolerance_um=self.plan.dof_um)
 
-    def predict_z_um(self, key: str, x_um: float, y_um: float, t_s: float) -> float | None:
+    def predict(self, key: str, x_um: float, y_um: float, t_s: float) -> Prediction | None:
         """Where ``key`` at (x, y) should be in focus at ``t_s``, or None with nothing to go by."""
         state = self.keys.get(key)
         rate = self.drift_rate_um_s(t_s)
         if state is not None and state.last is not None:
             t_last, z_last = state.last
-            return z_last + rate * (t_s - t_last)
+            trend_um = rate * (t_s - t_last)
+            return Prediction(z_last + trend_um, "last plane", abs(trend_um))
         fit = self.surface(t_s)
-        return None if fit is None else fit.z_um(x_um, y_um)
+        if fit is None:
+            return None
+        beyond_mm = fit.beyond_support_mm(x_um, y_um)
+        return Prediction(fit.z_um(x_um, y_um), "surface", UNSUPPORTED_SLOPE_UM_PER_MM * beyond_mm)
+
+    def predict_z_um(self, key: str, x_um: float, y_um: float, t_s: float) -> float | None:
+        """:meth:`predict`'s plane alone."""
+        p = self.predict(key, x_um, y_um, t_s)
+        return None if p is None else p.z_um
 
     # -- focusing -------------------------------------------------------------------
 
@@ -131,10 +165,11 @@ class FocusTracker:
     ) -> FocusResult:
         """Focus ``key``; the stage is already at (x_um, y_um). Records the plane if found."""
         plan = self.plan
+        d = plan.dof_um
         t_s = scope.clock.now()
-        predicted = self.predict_z_um(key, x_um, y_um, t_s)
+        prediction = self.predict(key, x_um, y_um, t_s)
         probe = FocusProbe(scope, plan, metric=metric, on_point=on_point)
-        if predicted is None:
+        if prediction is None:
             start = await scope.position()
             centre = default_centre_z_um(self.profile, plan, start.z_um)
             lo, hi = plan.clamp(centre - plan.cold_half_range_um), plan.clamp(centre + plan.cold_half_range_um)
@@ -142,22 +177,28 @@ class FocusTracker:
             result.message += " (cold: nothing known yet)"
             return self.record(key, x_um, y_um, result)
 
-        predicted = plan.clamp(predicted)
+        predicted = plan.clamp(prediction.z_um)
         state = self.keys.get(key)
-        fallback_name = "predicted plane (last good plane moved by the drift trend)"
-        if state is not None and state.planes and state.floor is not None and state.peak is not None:
-            outcome = await refine(probe, predicted, reach_um=TRACK_REACH_DOF * plan.dof_um, floor=state.floor)
+        if prediction.source == "last plane" and state is not None and state.floor is not None and state.peak is not None:
+            fallback_name = "predicted plane (last good plane moved by the drift trend)"
+            outcome = await refine(probe, predicted, reach_um=TRACK_REACH_DOF * d, floor=state.floor)
             if not outcome.edge and outcome.best.score >= PEAK_KEEP * state.peak:
-                base = min(state.floor, min(s.score for s in probe.samples))
-                result = await conclude(probe, outcome, fallback_z_um=predicted, fallback_name=fallback_name, floor=base)
+                result = await conclude(probe, outcome, fallback_z_um=predicted, fallback_name=fallback_name)
                 if result.found:
                     result.message += " (tracked)"
                     return self.record(key, x_um, y_um, result)
-            searches = [(WIDEN_HALF_RANGE_DOF * plan.dof_um, "widened search after the tracking bracket found no peak")]
+            # Wide enough to take in the last plane too: a drift trend may have stopped.
+            half = max(WIDEN_HALF_RANGE_DOF * d, prediction.spread_um + NEW_KEY_HALF_RANGE_DOF * d)
+            searches = [(half, "widened search after the tracking bracket found no peak")]
         else:
             fallback_name = "predicted plane (from the focus surface)"
-            searches = [(NEW_KEY_HALF_RANGE_DOF * plan.dof_um, "first visit, around the focus surface"),
-                        (WIDEN_HALF_RANGE_DOF * plan.dof_um, "first visit, widened")]
+            first = NEW_KEY_HALF_RANGE_DOF * d + prediction.spread_um
+            where = "around the focus surface"
+            if prediction.spread_um >= d:
+                where += f", {prediction.spread_um / UNSUPPORTED_SLOPE_UM_PER_MM:.0f} mm past its points"
+            searches = [(first, f"first visit, {where}"),
+                        (max(2.0 * first, WIDEN_HALF_RANGE_DOF * d), "first visit, widened")]
+        searches = [(h, label) for h, label in searches if h < plan.cold_half_range_um]
         searches.append((plan.cold_half_range_um, "cold search around the prediction"))
         for half_um, label in searches:
             result = await cold_search(
@@ -179,7 +220,7 @@ class FocusTracker:
             del state.planes[:-HISTORY_PER_KEY]
             if math.isfinite(result.score):
                 state.peak = result.score
-            if result.curve and (_spans_floor(result) or state.floor is None):
+            if math.isfinite(result.floor):
                 state.floor = result.floor
         return result
 
@@ -208,11 +249,3 @@ class FocusTracker:
             )
         return tracker
 
-
-def _spans_floor(result: FocusResult) -> bool:
-    """Whether the curve reached far enough from its peak (4 fitted widths) for its lowest
-    score to be the floor, not just the flank of the peak."""
-    if not math.isfinite(result.width_um):
-        return False
-    zs = [p.z_um for p in result.curve]
-    return max(zs) - min(zs) >= 4.0 * result.width_um

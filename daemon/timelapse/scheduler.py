@@ -60,9 +60,9 @@ MISSED_DOWN = "the daemon was not running"
 MISSED_OVERRUN = "the previous time point ran into this one's slot"
 MISSED_PAUSED = "the time-lapse was paused"
 STOP_REQUESTS = ("pause", "abort", "shutdown")
-# Whole-travel focus searches per time point while no plane is known yet: enough to get
-# past an empty well or a bubble, few enough that a dead lamp does not cost 100 frames
-# at every position.
+# Cold focus searches per time point while no plane is known yet: enough to get past an
+# empty well or a bubble, few enough that a dead lamp does not cost a search at every
+# position.
 FIRST_FIND_TRIES = 2
 
 
@@ -259,7 +259,10 @@ class Scheduler:
         """Checked between positions: a request (here or from another process) that ends
         this time point's run here, leaving it open."""
         if self._request is None:
-            self._request = await asyncio.to_thread(self.index.peek_request, self.id)
+            external = await asyncio.to_thread(self.index.peek_request, self.id)
+            # A pause/abort asked in this process while the index was read must not be overwritten.
+            if self._request is None:
+                self._request = external
         return self._request in STOP_REQUESTS
 
     # -- events ------------------------------------------------------------------------
@@ -554,20 +557,15 @@ class Scheduler:
         return result.z_um, result
 
     async def _first_find(self, pos: PlannedPosition, on_point: Callable[[FocusPoint], None]) -> FocusResult:
-        """Focus with nothing known yet: a sweep over the whole safe focus travel.
-
-        Homing leaves the objective at the bottom of its travel, far outside a normal
-        search range; this costs tens of frames once per time-lapse, after which the
-        tracker's focus surface predicts every other position.
+        """Focus with nothing known yet: a cold search around the present focus, or around
+        the profile's ``[focus] nominal_z_um`` when the focus sits far from it (homing
+        leaves the objective at the bottom of its travel). After this the tracker's focus
+        surface predicts every other position.
         """
         from daemon.focus.autofocus import autofocus
 
-        f = self.profile.focus
-        result = await autofocus(
-            self.scope, centre_z_um=(f.z_min_um + f.z_safe_max_um) / 2.0, range_um=f.z_safe_max_um - f.z_min_um,
-            on_point=on_point,
-        )
-        result.message += " (first search of the time-lapse: whole focus travel)"
+        result = await autofocus(self.scope, on_point=on_point)
+        result.message += " (first search of the time-lapse)"
         return self.tracker.record(pos.key, pos.x_um, pos.y_um, result)
 
     async def _expose(

@@ -7,7 +7,9 @@ within 25x the time of one copy of that frame (same run); cold autofocus on the 
 10x/0.25 scope with the start off by up to ±150 um, 50 seeded trials: median <= 15 frames,
 95th-percentile |error| <= d/4 (d = depth of field), no success reported out of focus;
 tracking with drift up to 20 um between time points: median <= 6 frames, same accuracy.
-A naive full sweep at d/4 steps over the same ±150 um is run for the ratio.
+A naive full sweep at d/4 steps over the same ±150 um is run for the ratio. Fields with
+next to no cells (under 2 % cover, the empty control well among them) are focused too:
+they may report "no focus found", never a focus that is not there.
 """
 
 from __future__ import annotations
@@ -30,6 +32,7 @@ from tests.helpers import sim_scope
 
 FRAME_SHAPE = (1080, 1920)
 COLD_TRIALS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_TRIALS", "50"))
+SPARSE_TRIALS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_SPARSE_TRIALS", "10"))
 NAIVE_TRIALS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_NAIVE_TRIALS", "3"))
 TRACK_TIME_POINTS = int(os.environ.get("PHASEWATCH_BENCH_FOCUS_TIME_POINTS", "8"))
 TRACK_WELLS = ("B3", "C6", "D9", "E2", "F5", "G11")
@@ -124,6 +127,38 @@ async def _cold_trials(profile: Profile) -> list[Trial]:
     return trials
 
 
+async def _bare_field(scope: Scope, rng: np.random.Generator, profile: Profile) -> tuple[float, float]:
+    """A random site with under MIN_COVER of cells (an empty well's when none turns up in 80 tries)."""
+    assert scope.sim is not None and profile.sim is not None
+    world = scope.sim.world
+    plate = profile.sim.plate
+    names = [f"{chr(65 + r)}{c + 1}" for r in range(plate.rows) for c in range(plate.columns)]
+    for _ in range(80):
+        cx, cy = world.well_centre_um(names[int(rng.integers(len(names)))])
+        r, a = 2500.0 * np.sqrt(rng.uniform()), rng.uniform(0, 2 * np.pi)
+        x, y = cx + r * np.cos(a), cy + r * np.sin(a)
+        if world.true_confluence(x, y, scope.clock.now()) < MIN_COVER:
+            return float(x), float(y)
+    return world.well_centre_um(plate.empty_wells[0])
+
+
+async def _sparse_trials(profile: Profile) -> list[Trial]:
+    """Cold autofocus at fields with next to no cells: honest "not found" or a real focus."""
+    rng = np.random.default_rng(SEED + 3)
+    trials = []
+    async with sim_scope(profile, speed=SIM_SPEED) as scope:
+        for _ in range(SPARSE_TRIALS):
+            x, y = await _bare_field(scope, rng, profile)
+            await scope.move_to(x_um=x, y_um=y)
+            truth = scope.true_focus_z_um()
+            assert truth is not None
+            await scope.move_to(z_um=truth + rng.uniform(-START_ERROR_UM, START_ERROR_UM))
+            r = await autofocus(scope)
+            assert r.true_z_um is not None
+            trials.append(Trial(r.found, r.frames, r.z_um - r.true_z_um, r.elapsed_s))
+    return trials
+
+
 async def _naive_trials(profile: Profile) -> list[Trial]:
     """The plain way: sweep the whole ±150 um at d/4 steps, go to the sharpest frame."""
     rng = np.random.default_rng(SEED + 1)
@@ -190,10 +225,13 @@ TRACK_INTERVAL_S = 900.0
 
 def tracking_profile() -> Profile:
     """The sim profile with a large door-opening drift: 60 um settling with τ = 40 min, the
-    door opened 15 min in, time points every 15 min: up to 19 um between time points."""
+    door opened 15 min after the simulated clock starts (door times count from seeding,
+    the clock starts ``culture_age_h`` after it), time points every 15 min: up to 19 um
+    between time points."""
     base = load_profile("sim")
     assert base.sim is not None
-    focal = dataclasses.replace(base.sim.focal_plane, drift_um=60.0, door_openings_h=[0.25])
+    door_h = base.sim.culture_age_h + TRACK_INTERVAL_S / 3600.0
+    focal = dataclasses.replace(base.sim.focal_plane, drift_um=60.0, door_openings_h=[door_h])
     return dataclasses.replace(base, sim=dataclasses.replace(base.sim, focal_plane=focal))
 
 
@@ -221,6 +259,13 @@ def focus_rows() -> list[dict[str, object]]:
         {"name": "cold: p95 |error|", "value": cold_p95, "unit": "um", "target": f"<= d/4 = {quarter:.2f}", "ok": cold_p95 <= quarter},
         {"name": "cold: success reported out of focus (|err| > d/4)", "value": len(false_success), "unit": "trials", "target": "0", "ok": not false_success},
         {"name": "cold: median elapsed (scope clock)", "value": statistics.median(t.elapsed_s for t in cold), "unit": "s", "target": "-", "ok": None},
+    ]
+    sparse = asyncio.run(_sparse_trials(profile))
+    sparse_false = [t for t in sparse if t.found and abs(t.error_um) > quarter]
+    rows += [
+        {"name": f"bare fields (< {100 * MIN_COVER:.0f} % cells): trials", "value": len(sparse), "unit": "", "target": "-", "ok": None},
+        {"name": "bare fields: focus found (in focus)", "value": sum(t.found for t in sparse) - len(sparse_false), "unit": "trials", "target": "-", "ok": None},
+        {"name": "bare fields: success reported out of focus", "value": len(sparse_false), "unit": "trials", "target": "0", "ok": not sparse_false},
     ]
     naive = asyncio.run(_naive_trials(profile))
     naive_frames = statistics.median(t.frames for t in naive)
