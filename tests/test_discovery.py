@@ -73,5 +73,6 @@ def test_loopback_server_is_advertised_on_loopback_only():
     adv = Advertiser(host="127.0.0.1", port=1, scope_name="x", profile_name="sim", token_to_view=False)
     assert adv._interfaces() == ["127.0.0.1"]
     assert adv.txt["token"] == "control"
+    # Address arithmetic only: nothing is bound or advertised on the wildcard here.
     every = listen_addresses("0.0.0.0")
     assert "127.0.0.1" not in every  # a LAN-wide server advertises its LAN addresses, not loopback
