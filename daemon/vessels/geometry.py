@@ -145,12 +145,12 @@ def row_index(label: str) -> int:
     return n - 1
 
 
-_WELL_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*0*(\d{1,3})\s*$")
+WELL_NAME_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*0*(\d{1,3})\s*$")
 
 
 def normalise_well_name(name: str) -> str | None:
     """'b03' -> 'B3'; None when ``name`` is not a row letter and a column number."""
-    m = _WELL_RE.match(name)
+    m = WELL_NAME_RE.match(name)
     if not m or int(m.group(2)) == 0:
         return None
     return f"{m.group(1).upper()}{int(m.group(2))}"
@@ -228,7 +228,7 @@ def _build_vessel(name: str, e: VesselEntry, file: Path) -> Vessel:
         for i, raw in enumerate(e.wells):
             w = load_section(WellEntry, raw, file=file, section=f"{section}.wells[{i}]")
             key = normalise_well_name(w.name) or w.name
-            m = _WELL_RE.match(key)
+            m = WELL_NAME_RE.match(key)
             row, col = (row_index(m.group(1)), int(m.group(2)) - 1) if m else (0, i)
             if key in wells:
                 raise ConfigError(file, f"{section}.wells[{i}]", "name", f"well {key} is listed twice")

@@ -8,28 +8,11 @@ inside the well bottom's diameter.
 from __future__ import annotations
 
 import math
-import re
 
 import numpy as np
 
+from daemon.vessels.geometry import WELL_NAME_RE, row_index, row_label
 from drivers.sim.config import SimPlate
-
-_WELL_NAME = re.compile(r"^\s*([A-Za-z]{1,2})\s*0*(\d{1,3})\s*$")
-
-
-def row_letters(row: int) -> str:
-    """0 -> 'A', 25 -> 'Z', 26 -> 'AA' (the 1536-well plate's rows run to AF)."""
-    if row < 26:
-        return chr(ord("A") + row)
-    return chr(ord("A") + row // 26 - 1) + chr(ord("A") + row % 26)
-
-
-def row_index(letters: str) -> int:
-    letters = letters.upper()
-    if len(letters) == 1:
-        return ord(letters) - ord("A")
-    return (ord(letters[0]) - ord("A") + 1) * 26 + ord(letters[1]) - ord("A")
-
 
 class PlateLayout:
     """Wells of the simulated plate in stage coordinates."""
@@ -52,11 +35,11 @@ class PlateLayout:
         return self.rows * self.columns
 
     def name(self, row: int, column: int) -> str:
-        return f"{row_letters(row)}{column + 1}"
+        return f"{row_label(row)}{column + 1}"
 
     def parse(self, well: str) -> tuple[int, int]:
         """'B7' -> (row 1, column 6); raises ValueError naming the plate's range."""
-        m = _WELL_NAME.match(well)
+        m = WELL_NAME_RE.match(well)
         last = self.name(self.rows - 1, self.columns - 1)
         if m is None:
             raise ValueError(f"{well!r} is not a well name; use a row letter and a column number, A1..{last}")
