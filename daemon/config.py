@@ -196,16 +196,3 @@ def load_section(cls: type[T], table: Any, *, file: str | Path, section: str) ->
         opt, _, problem = str(exc).partition(": ")
         raise ConfigError(file, section, opt if problem else None, problem or str(exc)) from None
     return obj
-
-
-def describe(cls: type[Any], section: str = "") -> list[str]:
-    """Human-readable list of the options of ``cls`` (used by ``phasewatch check --options``)."""
-    lines: list[str] = []
-    hints = typing.get_type_hints(cls)
-    for f in dataclasses.fields(cls):
-        tp = hints[f.name]
-        if dataclasses.is_dataclass(tp):
-            lines += describe(tp, f"{section}.{f.name}" if section else f.name)  # type: ignore[arg-type]
-            continue
-        lines.append(f"[{section}] {f.name}: {_describe_allowed(f, tp)} - {f.metadata.get('doc', '')}")
-    return lines

@@ -29,9 +29,6 @@ class SimHandles:
     world: SimWorld
     emulator: GcodeEmulator
 
-    def true_focus_z_um(self, x_um: float, y_um: float, t_s: float) -> float:
-        return self.world.true_focus_z_um(x_um, y_um, t_s)
-
 
 class Scope:
     def __init__(
@@ -148,4 +145,4 @@ class Scope:
         if self.sim is None or self.last_position is None:
             return None
         p = self.last_position
-        return self.sim.true_focus_z_um(p.x_um, p.y_um, self.clock.now())
+        return self.sim.world.true_focus_z_um(p.x_um, p.y_um, self.clock.now())

@@ -66,14 +66,9 @@ def target_position_um(profile: Profile, args: argparse.Namespace) -> tuple[floa
         return args.x_um, args.y_um
     if args.x_um is not None or args.y_um is not None:
         raise ConfigError(profile.path, "", "--well", "give either --well or --x-um/--y-um, not both")
-    from daemon.vessels.geometry import get_vessel
-    from daemon.vessels.stage_map import load_stage_map, sim_vessel_name
+    from daemon.vessels.stage_map import well_position_um
 
-    smap = load_stage_map(args.data, profile)
-    vessel_name = args.vessel or smap.vessel or sim_vessel_name(profile)
-    if not vessel_name:
-        raise ConfigError(profile.path, "", "--vessel", "the stage map names no vessel; give --vessel, e.g. 96-well")
     try:
-        return smap.well_stage_um(get_vessel(vessel_name), args.well)
+        return well_position_um(args.data, profile, args.well, args.vessel)
     except ConfigError as exc:
         raise ConfigError(profile.path, "", "--well", exc.problem) from None

@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import datetime as dt
-import os
 import sys
 from pathlib import Path
 
@@ -15,6 +13,8 @@ import tifffile
 from daemon.commands.common import add_position_options, add_profile_options, target_position_um, truth_beside
 from daemon.hardware import build_scope
 from daemon.profile import load_profile
+from daemon.storage.frames import atomic_open
+from daemon.storage.ome import iso_utc
 from drivers.base import Frame
 
 
@@ -37,9 +37,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def write_tiff(path: Path, frame: Frame, *, pixel_size_um: float, x_um: float, y_um: float, z_um: float) -> None:
-    """Write atomically: a temporary name, flushed and synced, then renamed over ``path``."""
-    acquired = dt.datetime.fromtimestamp(frame.t_s, tz=dt.timezone.utc).isoformat()
-    tmp = path.with_name(f".{path.name}.partial")
+    """Write all or nothing: a temporary name, flushed and synced, then renamed over ``path``."""
     metadata = {
         "axes": "YX",
         "PhysicalSizeX": pixel_size_um,
@@ -52,13 +50,10 @@ def write_tiff(path: Path, frame: Frame, *, pixel_size_um: float, x_um: float, y
             "PositionZ": z_um, "PositionZUnit": "µm",
             "ExposureTime": frame.exposure_ms, "ExposureTimeUnit": "ms",
         },
-        "AcquisitionDate": acquired,
+        "AcquisitionDate": iso_utc(frame.t_s),
     }
-    with open(tmp, "wb") as fh:
+    with atomic_open(path) as fh:
         tifffile.imwrite(fh, np.ascontiguousarray(frame.pixels), ome=True, photometric="minisblack", metadata=metadata)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
 
 
 async def run(args: argparse.Namespace) -> int:

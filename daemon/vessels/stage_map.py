@@ -21,7 +21,7 @@ import numpy as np
 from skimage.transform import SimilarityTransform
 
 from daemon.config import ConfigError
-from daemon.vessels.geometry import SLAS_LENGTH_MM, SLAS_WIDTH_MM, Vessel, load_vessels, slas_centred_a1_mm
+from daemon.vessels.geometry import SLAS_LENGTH_MM, SLAS_WIDTH_MM, Vessel, get_vessel, load_vessels, slas_centred_a1_mm
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
@@ -297,3 +297,19 @@ def load_stage_map(data_dir: Path, profile: Profile) -> StageMap:
         f"no vessel-to-stage map for profile {profile.name!r}; centre two wells far apart in live view and "
         f"teach them: phasewatch vessel teach 96-well A1=X,Y H12=X,Y --profile {profile.name} --data {data_dir}",
     )
+
+
+def well_position_um(
+    data_dir: Path, profile: Profile, well: str, vessel: str | None = None
+) -> tuple[float, float]:
+    """Stage position of a well's centre through the profile's stored (or simulated) map.
+
+    ``vessel`` defaults to the one the map was taught on (or the simulated plate's).
+    """
+    smap = load_stage_map(data_dir, profile)
+    name = vessel or smap.vessel or sim_vessel_name(profile)
+    if not name:
+        raise ConfigError(
+            stage_map_path(data_dir, profile), "", "vessel", "the stage map names no vessel; say which, e.g. 96-well"
+        )
+    return smap.well_stage_um(get_vessel(name), well)

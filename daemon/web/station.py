@@ -249,16 +249,9 @@ class Station:
         return out
 
     def well_centre_um(self, well: str) -> tuple[float, float]:
-        from daemon.vessels.stage_map import load_stage_map
+        from daemon.vessels.stage_map import well_position_um
 
-        smap = load_stage_map(self.data_dir, self.profile)
-        return smap.well_stage_um(self._vessel(smap), well)
-
-    def _vessel(self, smap: Any) -> Any:
-        from daemon.vessels.geometry import get_vessel
-        from daemon.vessels.stage_map import sim_vessel_name
-
-        return get_vessel(smap.vessel or sim_vessel_name(self.profile) or "96-well")
+        return well_position_um(self.data_dir, self.profile, well)
 
     def well_here(self, pos: Position | None) -> str | None:
         """The well under the objective: the simulator's truth on the simulated scope."""
