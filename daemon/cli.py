@@ -17,7 +17,7 @@ from collections.abc import Sequence
 
 import daemon.commands
 from daemon import __version__
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from drivers.base import HardwareError
 
 EXIT_USER_ERROR = 2

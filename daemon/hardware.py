@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.profile import Profile
 from daemon.scope import Scope, SimHandles
 from drivers.base import Camera, Position

@@ -1,6 +1,6 @@
 """Scope profiles: one TOML file per scope build (camera, optics, stage, focus, lamp, sim).
 
-Loading is strict (see :mod:`daemon.config`): every error names the file, the section and
+Loading is strict (see :mod:`drivers.options`): every error names the file, the section and
 the option and says what is allowed.
 """
 
@@ -11,7 +11,7 @@ import math
 import tomllib
 from pathlib import Path
 
-from daemon.config import ConfigError, load_section, option, suggest
+from drivers.options import ConfigError, load_section, option, suggest
 from drivers.sim.config import SimConfig
 
 PROFILE_DIR = Path(__file__).resolve().parent.parent / "hw_profiles"
@@ -181,7 +181,7 @@ def load_profile(name_or_path: str | Path) -> Profile:
     path = resolve_profile_path(name_or_path)
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
+    except ValueError as exc:  # TOMLDecodeError, or an integer too long to convert
         raise ConfigError(path, "", None, f"not valid TOML: {exc}") from None
     except OSError as exc:
         raise ConfigError(path, "", None, f"cannot read: {exc.strerror}") from None

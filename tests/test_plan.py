@@ -12,7 +12,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.timelapse.plan import (
     DEFAULT_FIELD_UM,
     Plan,

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from daemon.cli import main
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.profile import PROFILE_DIR, load_profile
 
 SIM = (PROFILE_DIR / "sim.toml").read_text()

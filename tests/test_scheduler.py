@@ -15,7 +15,7 @@ import ome_types
 import pytest
 import tifffile
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.storage import frames as frames_mod
 from daemon.storage.index import open_index
 from daemon.storage.reconcile import reconcile

@@ -13,7 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from daemon.cli import main as cli_main
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.vessels.geometry import (
     SLAS_LENGTH_MM,
     SLAS_WIDTH_MM,

@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 
 if TYPE_CHECKING:
     from daemon.profile import Profile

@@ -12,7 +12,7 @@ from daemon.commands.common import (
     target_position_um,
     truth_beside,
 )
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.focus.autofocus import FocusPoint, FocusResult, autofocus
 from daemon.focus.metrics import METRICS
 from daemon.hardware import build_scope

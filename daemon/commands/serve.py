@@ -7,7 +7,7 @@ import logging
 import math
 
 from daemon.commands.common import add_profile_options
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.profile import load_profile
 from daemon.storage.space import DEFAULT_RESERVE_MB
 

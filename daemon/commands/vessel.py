@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from daemon.commands.common import add_profile_options, print_json
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.profile import Profile, load_profile
 from daemon.vessels.geometry import Vessel, get_vessel, load_vessels
 from daemon.vessels.stage_map import (

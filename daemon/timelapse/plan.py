@@ -17,7 +17,7 @@ A plan is a TOML or JSON file::
     count = 5
     step_um = 2.0
 
-Loading is strict in the style of :mod:`daemon.config`: every error names the key and
+Loading is strict in the style of :mod:`drivers.options`: every error names the key and
 says what is allowed.
 """
 
@@ -30,7 +30,7 @@ import tomllib
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.config import ConfigError, load_section, option, section
+from drivers.options import ConfigError, load_section, option, section
 from daemon.vessels.geometry import Vessel, VesselError, Well, get_vessel, parse_wells
 from daemon.vessels.stage_map import StageMap, sim_vessel_name
 from drivers.sim.controller import trapezoid_duration_s
@@ -214,14 +214,14 @@ def load_plan(path: Path) -> Plan:
     if path.suffix.lower() == ".json":
         try:
             raw = json.loads(text)
-        except json.JSONDecodeError as exc:
+        except ValueError as exc:  # JSONDecodeError, or an integer too long to convert
             raise ConfigError(path, "", None, f"not valid JSON: {exc}") from None
         if not isinstance(raw, dict):
             raise ConfigError(path, "", None, "a JSON plan must be an object {...}")
     else:
         try:
             raw = tomllib.loads(text)
-        except tomllib.TOMLDecodeError as exc:
+        except ValueError as exc:  # TOMLDecodeError, or an integer too long to convert
             raise ConfigError(path, "", None, f"not valid TOML: {exc}") from None
     return _plan_from_table(raw, file=path, base_dir=path.parent)
 

@@ -202,7 +202,7 @@ class Scheduler:
         """Continue an unfinished time-lapse of this data folder (after a restart)."""
         row = index.require_timelapse(timelapse_id)
         if row["profile_name"] != scope.profile.name:
-            from daemon.config import ConfigError
+            from drivers.options import ConfigError
 
             raise ConfigError(
                 scope.profile.path, "", None,

@@ -16,7 +16,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
-from daemon.config import ConfigError, load_section, option, suggest
+from drivers.options import ConfigError, load_section, option, suggest
 
 BUILTIN_FILE = Path(__file__).resolve().parent.parent / "data" / "vessels.toml"
 
@@ -268,7 +268,7 @@ def _build_vessel(name: str, e: VesselEntry, file: Path) -> Vessel:
 def _read_file(file: Path) -> dict[str, Vessel]:
     try:
         raw = tomllib.loads(file.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
+    except ValueError as exc:  # TOMLDecodeError, or an integer too long to convert
         raise ConfigError(file, "", None, f"not valid TOML: {exc}") from None
     except OSError as exc:
         raise ConfigError(file, "", None, f"cannot read: {exc.strerror}") from None

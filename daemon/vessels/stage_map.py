@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from skimage.transform import SimilarityTransform
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.vessels.geometry import SLAS_LENGTH_MM, SLAS_WIDTH_MM, Vessel, get_vessel, load_vessels, slas_centred_a1_mm
 
 if TYPE_CHECKING:

@@ -24,7 +24,7 @@ import numpy as np
 import tifffile
 from aiohttp import web
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.illumination import CalibrationError
 from daemon.web import API_PREFIX
 from daemon.web.auth import VIEW_COOKIE, Authenticator

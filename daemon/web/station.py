@@ -25,7 +25,7 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.timelapse import timing

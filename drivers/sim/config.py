@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 
-from daemon.config import option, section
+from drivers.options import option, section
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)

@@ -31,7 +31,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from daemon.config import ConfigError
+from drivers.options import ConfigError
 from drivers.sim.culture import Culture
 from drivers.sim.focal import FocalPlane
 from drivers.sim.illumination import Illumination

@@ -6,12 +6,18 @@ it: unknown options (with the nearest valid name suggested), wrong types, values
 range or not among the allowed choices, and missing required options each raise a
 :class:`ConfigError` naming the file, the section and the option and saying what is
 allowed. Nested dataclass fields are sub-sections (``[sim.culture]``).
+
+Numbers are checked for what TOML allows but no option means: ``nan`` and ``inf`` are
+refused for every number option, and whole numbers must fit in 64 bits (TOML's own
+integer range, which Python's parser does not enforce), so an absurd value is a one-line
+error here rather than an overflow deep inside a driver.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import difflib
+import math
 import types
 import typing
 from pathlib import Path
@@ -20,6 +26,10 @@ from typing import Any, TypeVar
 T = TypeVar("T")
 
 _REQUIRED = object()
+
+# TOML 1.0 integers are 64-bit signed (toml.io, "Integer"); tomllib returns any size.
+INT_MIN = -(2**63)
+INT_MAX = 2**63 - 1
 
 
 class ConfigError(ValueError):
@@ -86,8 +96,19 @@ def _describe_allowed(f: dataclasses.Field[Any], tp: Any) -> str:
     return f"a {kind}{unit}"
 
 
+class _OutOfRange(TypeError):
+    """A number of the right kind that no option can hold: nan, inf, or beyond 64 bits."""
+
+    def __init__(self, problem: str) -> None:
+        super().__init__(problem)
+        self.problem = problem
+
+
 def _coerce(value: Any, tp: Any) -> Any:
-    """Return ``value`` as type ``tp`` or raise TypeError. Ints are accepted for floats."""
+    """Return ``value`` as type ``tp`` or raise TypeError. Ints are accepted for floats.
+
+    Raises :class:`_OutOfRange` for a non-finite float or an integer outside 64 bits.
+    """
     origin = typing.get_origin(tp)
     if origin in (typing.Union, types.UnionType):
         for arg in typing.get_args(tp):
@@ -95,6 +116,8 @@ def _coerce(value: Any, tp: Any) -> Any:
                 continue
             try:
                 return _coerce(value, arg)
+            except _OutOfRange:
+                raise
             except TypeError:
                 pass
         raise TypeError
@@ -115,11 +138,17 @@ def _coerce(value: Any, tp: Any) -> Any:
     if tp is int:
         if isinstance(value, bool) or not isinstance(value, int):
             raise TypeError
+        _check_int_size(value)
         return value
     if tp is float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise TypeError
-        return float(value)
+        if isinstance(value, int):
+            _check_int_size(value)
+        number = float(value)
+        if not math.isfinite(number):
+            raise _OutOfRange(f"must be a finite number, got {value!r}")
+        return number
     if tp is str:
         if not isinstance(value, str):
             raise TypeError
@@ -127,6 +156,13 @@ def _coerce(value: Any, tp: Any) -> Any:
     if tp is Any:
         return value
     raise TypeError
+
+
+def _check_int_size(value: int) -> None:
+    if not INT_MIN <= value <= INT_MAX:
+        # str() of a huge int is itself refused past 4300 digits, so say its size instead.
+        digits = value.bit_length() * math.log10(2)
+        raise _OutOfRange(f"must fit in 64 bits ({INT_MIN} to {INT_MAX}), got a number of about {digits:.0f} digits")
 
 
 def _check_limits(value: Any, f: dataclasses.Field[Any]) -> bool:
@@ -180,6 +216,10 @@ def load_section(cls: type[T], table: Any, *, file: str | Path, section: str) ->
         raw = table[name]
         try:
             value = _coerce(raw, tp)
+        except _OutOfRange as exc:
+            raise ConfigError(
+                file, section, name, f"{exc.problem}; set it to {_describe_allowed(f, tp)}"
+            ) from None
         except TypeError:
             raise ConfigError(
                 file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}"
