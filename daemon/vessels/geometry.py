@@ -11,12 +11,12 @@ from __future__ import annotations
 import dataclasses
 import functools
 import math
-import re
 import tomllib
 from pathlib import Path
 from typing import Any
 
 from drivers.options import ConfigError, load_section, option, suggest
+from drivers.wells import WELL_NAME_RE, normalise_well_name, row_index, row_label
 
 BUILTIN_FILE = Path(__file__).resolve().parent.parent / "data" / "vessels.toml"
 
@@ -123,37 +123,6 @@ class Vessel:
             "pitch_x_mm": self.pitch_x_mm, "pitch_y_mm": self.pitch_y_mm,
             "wells": [w.to_dict() for w in self.wells.values()],
         }
-
-
-def row_label(row: int) -> str:
-    """0 -> 'A', 25 -> 'Z', 26 -> 'AA' (1536-well plates run to row AF)."""
-    if row < 0:
-        raise ValueError("row must be >= 0")
-    label = ""
-    n = row + 1
-    while n:
-        n, rem = divmod(n - 1, 26)
-        label = chr(ord("A") + rem) + label
-    return label
-
-
-def row_index(label: str) -> int:
-    """Inverse of :func:`row_label`."""
-    n = 0
-    for ch in label.upper():
-        n = n * 26 + (ord(ch) - ord("A") + 1)
-    return n - 1
-
-
-WELL_NAME_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*0*(\d{1,3})\s*$")
-
-
-def normalise_well_name(name: str) -> str | None:
-    """'b03' -> 'B3'; None when ``name`` is not a row letter and a column number."""
-    m = WELL_NAME_RE.match(name)
-    if not m or int(m.group(2)) == 0:
-        return None
-    return f"{m.group(1).upper()}{int(m.group(2))}"
 
 
 # --- the data file -------------------------------------------------------------------

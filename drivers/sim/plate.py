@@ -11,8 +11,9 @@ import math
 
 import numpy as np
 
-from daemon.vessels.geometry import WELL_NAME_RE, row_index, row_label
 from drivers.sim.config import SimPlate
+from drivers.wells import WELL_NAME_RE, row_index, row_label
+
 
 class PlateLayout:
     """Wells of the simulated plate in stage coordinates."""
