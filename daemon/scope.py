@@ -9,41 +9,37 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import dataclasses
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from typing import TYPE_CHECKING, Any
 
 from drivers.base import Camera, Frame, MotionController, Position, PositionUnknownError
 from drivers.clock import Clock
+from drivers.truth import GroundTruth, NoTruth
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
-    from drivers.sim.controller import GcodeEmulator
-    from drivers.sim.world import SimWorld
-
-
-@dataclasses.dataclass
-class SimHandles:
-    """The simulated scope's ground truth, for tests and for truth-beside-estimate reports."""
-
-    world: SimWorld
-    emulator: GcodeEmulator
 
 
 class Scope:
+    """``truth`` is what the drivers know of the real scene (nothing, on real hardware);
+    ``on_stop`` releases what building the drivers started (e.g. a simulated controller),
+    after camera and controller are closed."""
+
     def __init__(
         self,
         profile: Profile,
         camera: Camera,
         motion: MotionController,
         clock: Clock,
-        sim: SimHandles | None = None,
+        truth: GroundTruth | None = None,
+        on_stop: Callable[[], None] | None = None,
     ) -> None:
         self.profile = profile
         self.camera = camera
         self.motion = motion
         self.clock = clock
-        self.sim = sim
+        self.truth: GroundTruth = truth if truth is not None else NoTruth()
+        self._on_stop = on_stop
         self.lock = asyncio.Lock()
         self.holder: str | None = None
         self.frames_captured = 0
@@ -73,8 +69,8 @@ class Scope:
                 await closer()
             except Exception as exc:  # noqa: BLE001 - reported below, after both are closed
                 errors.append(exc)
-        if self.sim is not None:
-            self.sim.emulator.stop()
+        if self._on_stop is not None:
+            self._on_stop()
         if errors:
             raise errors[0]
 
@@ -141,8 +137,8 @@ class Scope:
         return await self.capture(**kwargs)
 
     def true_focus_z_um(self) -> float | None:
-        """The simulator's true focal plane under the objective now; None on real hardware."""
-        if self.sim is None or self.last_position is None:
+        """The true focal plane under the objective now, where known (the simulator); else None."""
+        if self.last_position is None:
             return None
         p = self.last_position
-        return self.sim.world.true_focus_z_um(p.x_um, p.y_um, self.clock.now())
+        return self.truth.focus_z_um(p.x_um, p.y_um, self.clock.now())

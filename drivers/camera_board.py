@@ -20,13 +20,13 @@
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import threading
 import time
 from typing import Any
 
 import numpy as np
 
-from daemon.profile import CameraSection
 from drivers.base import CameraError, Frame
 from drivers.camera_common import (
     amplitude_factor_to_db,
@@ -36,6 +36,8 @@ from drivers.camera_common import (
     to_mono,
 )
 from drivers.clock import Clock, WallClock
+from drivers.registry import CameraContext, CameraDriver
+from drivers.sections import CameraSection
 
 MISSING_LIBRARY = (
     "board camera support is not installed: pip install 'phasewatch[board]' (needs the board's camera stack)"
@@ -69,6 +71,11 @@ def main_stream_to_mono(array: np.ndarray, fmt: str, width: int, height: int) ->
     if order is None:
         raise CameraError(f"board camera: main stream format {fmt!r} is not supported; use {MAIN_FORMAT}")
     return to_mono(array, channel_order=order, source="board camera")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class BoardOptions:
+    """The board camera needs nothing beyond the common [camera] options."""
 
 
 class BoardCamera:
@@ -297,3 +304,15 @@ class BoardCamera:
             if self._cam is not None:
                 cam, self._cam = self._cam, None
                 self._shutdown_unlocked(cam)
+
+
+def open_camera(ctx: CameraContext) -> BoardCamera:
+    return BoardCamera(ctx.profile.camera, clock=ctx.clock)
+
+
+DRIVER = CameraDriver(
+    name="board",
+    summary="a single-board computer's ribbon-cable camera module (needs the board extra)",
+    options=BoardOptions,
+    open=open_camera,
+)

@@ -2,31 +2,19 @@
 turning whatever a camera or image file delivers into a 2-D monochrome frame.
 
 The limits come from the ``[camera]`` section's own option declarations
-(:class:`daemon.profile.CameraSection`), so the drivers and the profile loader can never
+(:class:`drivers.sections.CameraSection`), so the drivers and the profile loader can never
 disagree about what is allowed.
 """
 
 from __future__ import annotations
 
-import dataclasses
 import math
 
 import cv2
 import numpy as np
 
-from daemon.profile import CameraSection
 from drivers.base import CameraError
-
-
-def _option_range(name: str) -> tuple[float, float]:
-    for f in dataclasses.fields(CameraSection):
-        if f.name == name:
-            return float(f.metadata["min"]), float(f.metadata["max"])
-    raise KeyError(name)
-
-
-EXPOSURE_RANGE_MS: tuple[float, float] = _option_range("exposure_ms")
-GAIN_RANGE_DB: tuple[float, float] = _option_range("gain_db")
+from drivers.sections import EXPOSURE_RANGE_MS, GAIN_RANGE_DB
 
 
 def _check_range(

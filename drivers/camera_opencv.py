@@ -39,16 +39,26 @@ from typing import Protocol
 import cv2
 import numpy as np
 
-from daemon.profile import CameraSection
 from drivers.base import CameraError, Frame
 from drivers.camera_common import check_exposure_ms, check_gain_db, delivered_bit_depth, to_mono
 from drivers.clock import Clock, WallClock
+from drivers.options import option
+from drivers.registry import CameraContext, CameraDriver
+from drivers.sections import CameraSection, driver_options
 
 FIRST_RETRY_S = 0.1
 V4L2_EXPOSURE_STEP_MS = 0.1  # V4L2_CID_EXPOSURE_ABSOLUTE counts 100 µs units (kernel camera control reference)
 V4L2_EXPOSURE_MANUAL = 1  # enum v4l2_exposure_auto_type
 # Some OpenCV builds map CAP_PROP_AUTO_EXPOSURE through a 0..1 range where 0.25 means manual.
 LEGACY_MANUAL_EXPOSURE = 0.25
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class OpenCVOptions:
+    device: str = option("0", doc="OpenCV device index or /dev/video path")
+    reconnect_max_s: float = option(
+        30.0, doc="longest wait between reconnection attempts after an unplug", min=0.1, max=3600.0, unit="s"
+    )
 
 
 class CaptureLike(Protocol):
@@ -121,9 +131,10 @@ class OpenCVCamera:
         capture_factory: CaptureFactory | None = None,
     ) -> None:
         self._cfg = camera
+        self._opts = driver_options(camera, OpenCVOptions)
         self._clock: Clock = clock or WallClock()
         self._factory: CaptureFactory = capture_factory or default_capture_factory
-        self._source, self._api = parse_device(camera.device)
+        self._source, self._api = parse_device(self._opts.device)
         self._cap: CaptureLike | None = None
         self._io_lock = threading.Lock()  # one thread at a time on the VideoCapture
         self._grab_lock: asyncio.Lock | None = None
@@ -151,7 +162,7 @@ class OpenCVCamera:
 
     async def grab(self) -> Frame:
         if self._grab_lock is None or self._closed:
-            raise CameraError(f"camera {self._cfg.device} is not open; open it before grabbing")
+            raise CameraError(f"camera {self._opts.device} is not open; open it before grabbing")
         async with self._grab_lock:
             try:
                 return await asyncio.to_thread(self._grab_blocking)
@@ -176,7 +187,7 @@ class OpenCVCamera:
         width, height = self._delivered or (None, None)
         return {
             "driver": "opencv",
-            "device": self._cfg.device,
+            "device": self._opts.device,
             "backend": self._backend or None,
             "open": self._cap is not None,
             "resolution": {"width_px": width, "height_px": height},
@@ -200,7 +211,7 @@ class OpenCVCamera:
                 fn()
 
     def _not_found(self) -> CameraError:
-        return CameraError(f"camera {self._cfg.device} not found; is it plugged in? check `device` in [camera]")
+        return CameraError(f"camera {self._opts.device} not found; is it plugged in? check `device` in [camera]")
 
     def _open_blocking(self) -> None:
         with self._io_lock:
@@ -212,7 +223,7 @@ class OpenCVCamera:
                 cap.release()
                 if isinstance(self._source, str) and os.path.exists(self._source):
                     raise CameraError(
-                        f"camera {self._cfg.device} exists but could not be opened; is another program "
+                        f"camera {self._opts.device} exists but could not be opened; is another program "
                         "using it, or does this user lack permission (the 'video' group)?"
                     )
                 raise self._not_found()
@@ -232,7 +243,7 @@ class OpenCVCamera:
             except _ReadFailed:
                 self._release_unlocked()
                 raise CameraError(
-                    f"camera {self._cfg.device} opened but delivered no frame; check the cable and "
+                    f"camera {self._opts.device} opened but delivered no frame; check the cable and "
                     "that the camera supports the requested width_px/height_px in [camera]"
                 ) from None
             self._note_delivered(pixels)
@@ -329,7 +340,7 @@ class OpenCVCamera:
         self._source_format = {1: "mono", 2: "YUYV (luma kept)", 3: "BGR (to luma)", 4: "BGRA (to luma)"}.get(
             channels, f"{channels} channels"
         )
-        return to_mono(image, channel_order="bgr", source=f"camera {self._cfg.device}")
+        return to_mono(image, channel_order="bgr", source=f"camera {self._opts.device}")
 
     def _grab_blocking(self) -> Frame:
         with self._io_lock:
@@ -362,7 +373,7 @@ class OpenCVCamera:
     async def _reconnect(self) -> Frame:
         """Reopen with exponential back-off; a frame on success, CameraError when out of tries."""
         await asyncio.to_thread(self._release_blocking)
-        max_wait_s = self._cfg.reconnect_max_s
+        max_wait_s = self._opts.reconnect_max_s
         delay_s = min(FIRST_RETRY_S, max_wait_s)
         waited_s = 0.0
         attempts = 0
@@ -376,7 +387,7 @@ class OpenCVCamera:
                 frame = await asyncio.to_thread(self._grab_blocking)
             except CameraError as exc:
                 # Keep the reason, drop the advice: the final message gives its own.
-                last_problem = str(exc).split(";")[0].removeprefix(f"camera {self._cfg.device} ")
+                last_problem = str(exc).split(";")[0].removeprefix(f"camera {self._opts.device} ")
             except _ReadFailed:
                 last_problem = "opened again but delivered no frame"
                 await asyncio.to_thread(self._release_blocking)
@@ -387,10 +398,22 @@ class OpenCVCamera:
                 break
             delay_s = min(delay_s * 2.0, max_wait_s)
         if self._closed:
-            raise CameraError(f"camera {self._cfg.device} was closed while reconnecting")
+            raise CameraError(f"camera {self._opts.device} was closed while reconnecting")
         self._failed_rounds += 1
         raise CameraError(
-            f"camera {self._cfg.device} stopped delivering frames and did not come back after "
+            f"camera {self._opts.device} stopped delivering frames and did not come back after "
             f"{attempts} attempts over {waited_s:.1f} s (last try: {last_problem}); "
             "is it plugged in? check the cable and `device` in [camera]"
         )
+
+
+def open_camera(ctx: CameraContext) -> OpenCVCamera:
+    return OpenCVCamera(ctx.profile.camera, clock=ctx.clock)
+
+
+DRIVER = CameraDriver(
+    name="opencv",
+    summary="UVC/V4L2 camera through OpenCV (USB cameras, /dev/video devices)",
+    options=OpenCVOptions,
+    open=open_camera,
+)

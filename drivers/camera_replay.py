@@ -20,6 +20,7 @@ evict-oldest policy would throw every frame away just before it is needed again.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import math
 import threading
 from pathlib import Path
@@ -29,10 +30,12 @@ import numpy as np
 import tifffile
 from PIL import Image, UnidentifiedImageError
 
-from daemon.profile import CameraSection
 from drivers.base import CameraError, Frame
 from drivers.camera_common import check_exposure_ms, check_gain_db, delivered_bit_depth, to_mono
 from drivers.clock import Clock
+from drivers.options import option
+from drivers.registry import CameraContext, CameraDriver
+from drivers.sections import CameraSection, driver_options
 
 TIFF_SUFFIXES = (".tif", ".tiff")
 OTHER_SUFFIXES = (".png", ".jpg", ".jpeg")
@@ -84,13 +87,24 @@ def decode_image(path: Path) -> np.ndarray:
     return to_mono(pixels, channel_order="bgr", source=f"replay image {path}")
 
 
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ReplayOptions:
+    replay_dir: str = option("", doc="folder of images played in a loop")
+    replay_fps: float = option(30.0, doc="frame rate of the replay", min=0.1, max=240.0, unit="fps")
+
+    def __post_init__(self) -> None:
+        if not self.replay_dir:
+            raise ValueError("replay_dir: the replay driver needs a folder of images")
+
+
 class ReplayCamera:
     def __init__(self, camera: CameraSection, clock: Clock, *, cache_bytes: int = DEFAULT_CACHE_BYTES) -> None:
-        if not camera.replay_dir:
+        if camera.options is None:
             raise CameraError("the replay camera needs a folder of images: set `replay_dir` in [camera]")
         self._cfg = camera
+        self._opts = driver_options(camera, ReplayOptions)
         self._clock = clock
-        self._folder = Path(camera.replay_dir).expanduser()
+        self._folder = Path(self._opts.replay_dir).expanduser()
         self._cache_limit = int(cache_bytes)
         self._files: list[Path] = []
         self._size: tuple[int, int] | None = None
@@ -121,7 +135,7 @@ class ReplayCamera:
     async def grab(self) -> Frame:
         if not self._open:
             raise CameraError(f"replay camera ({self._folder}) is not open; open it before grabbing")
-        period_s = 1.0 / self._cfg.replay_fps
+        period_s = 1.0 / self._opts.replay_fps
         now_s = self._clock.now()
         # The next slot strictly after now (and after the last one handed out), so the
         # frame returned always "arrives" after the call started.
@@ -165,7 +179,7 @@ class ReplayCamera:
             "frames": len(self._files),
             "resolution": {"width_px": width, "height_px": height},
             "bit_depth": self._bit_depth,
-            "fps": self._cfg.replay_fps,
+            "fps": self._opts.replay_fps,
             "exposure_ms": self._exposure_ms,
             "gain_db": self._gain_db,
             "controls": {
@@ -229,3 +243,15 @@ class ReplayCamera:
                 self._cache[index] = pixels
                 self._cached_bytes += pixels.nbytes
         return pixels
+
+
+def open_camera(ctx: CameraContext) -> ReplayCamera:
+    return ReplayCamera(ctx.profile.camera, ctx.clock)
+
+
+DRIVER = CameraDriver(
+    name="replay",
+    summary="a folder of images played in a loop (demos, benchmarks, offline work)",
+    options=ReplayOptions,
+    open=open_camera,
+)

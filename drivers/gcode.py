@@ -57,9 +57,15 @@ import serial
 from drivers.base import MotionError, Position, PositionUnknownError
 from drivers.limits import SoftLimits, plan_focus_approach
 
+from drivers.clock import WallClock
+from drivers.options import option
+from drivers.registry import StageBuild, StageContext, StageDriver
+from drivers.sections import driver_options
+from drivers.truth import NoTruth
+
 if TYPE_CHECKING:
-    from daemon.profile import FocusSection, IlluminationSection, StageSection
     from drivers.clock import Clock
+    from drivers.sections import FocusSection, IlluminationSection, StageSection
 
 log = logging.getLogger(__name__)
 
@@ -724,3 +730,44 @@ class GcodeController:
                 f"controller on {self._port_name} sent an unexpected reply {text!r} to '{line}'; check that it "
                 f"speaks the G-code dialect described in drivers/gcode.py and that baud = {self._baud} is right"
             )
+
+
+# --- the driver's [stage] options and its registration ----------------------------------
+# Kept together at the end of the module: what a profile sets for this driver beyond the
+# common [stage] options, and how the registry opens it.
+
+BAUD_RATES = (9600, 19200, 38400, 57600, 115200, 250000, 500000, 1000000)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class GcodeOptions:
+    port: str = option("", doc="serial port of the G-code controller, e.g. /dev/ttyUSB0")
+    baud: int = option(115200, doc="serial speed", choices=BAUD_RATES)
+
+    def __post_init__(self) -> None:
+        if not self.port:
+            raise ValueError("port: the gcode driver needs a serial port, e.g. /dev/ttyUSB0")
+
+
+def open_stage(ctx: StageContext) -> StageBuild:
+    """A controller board on a serial port, on the wall clock; nothing knows the truth."""
+    profile = ctx.profile
+    opts = driver_options(profile.stage, GcodeOptions)
+    clock = WallClock()
+    motion = GcodeController(
+        opts.port,
+        baud=opts.baud,
+        stage=profile.stage,
+        focus=profile.focus,
+        illumination=profile.illumination,
+        clock=clock,
+    )
+    return StageBuild(motion=motion, clock=clock, truth=NoTruth(), stop=lambda: None)
+
+
+DRIVER = StageDriver(
+    name="gcode",
+    summary="G-code controller board (RepRap-style dialect) on a USB or UART serial port",
+    options=GcodeOptions,
+    open=open_stage,
+)

@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING
 from drivers.base import LimitError, Position
 
 if TYPE_CHECKING:
-    from daemon.profile import FocusSection, StageSection
+    from drivers.sections import FocusSection, StageSection
 
 
 def approach_overshoot_um(backlash_um: float) -> float:

@@ -64,6 +64,12 @@ def option(
     return dataclasses.field(default=default, metadata=meta)
 
 
+def given(default: Any = None, *, doc: str) -> Any:
+    """Declare a field the loader never reads from the table: whoever loads the section fills
+    it in (a camera's or stage's driver options, loaded against the chosen driver)."""
+    return dataclasses.field(default=default, metadata={"doc": doc, "given": True})
+
+
 def section(cls: type[T], *, doc: str = "") -> Any:
     """Declare an optional sub-section whose options all have defaults."""
     return dataclasses.field(default_factory=cls, metadata={"doc": doc, "section": True})
@@ -179,6 +185,11 @@ def _check_limits(value: Any, f: dataclasses.Field[Any]) -> bool:
     return True
 
 
+def option_names(cls: type) -> list[str]:
+    """The options a TOML table may set for ``cls``, in declaration order (given fields left out)."""
+    return [f.name for f in dataclasses.fields(cls) if not f.metadata.get("given")]
+
+
 def suggest(name: str, valid: typing.Iterable[str]) -> str:
     """' (did you mean 'x'?)' for the nearest valid name, or ''."""
     close = difflib.get_close_matches(name, list(valid), n=1, cutoff=0.6)
@@ -190,7 +201,7 @@ def load_section(cls: type[T], table: Any, *, file: str | Path, section: str) ->
     if not isinstance(table, dict):
         raise ConfigError(file, section, None, f"must be a table ([{section}]), got {type(table).__name__}")
     hints = typing.get_type_hints(cls)
-    fields = {f.name: f for f in dataclasses.fields(cls)}  # type: ignore[arg-type]
+    fields = {f.name: f for f in dataclasses.fields(cls) if f.name in option_names(cls)}
     for key in table:
         if key not in fields:
             kind = "sub-section" if isinstance(table[key], dict) else "option"

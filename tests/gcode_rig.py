@@ -9,7 +9,7 @@ from typing import Callable
 
 import serial
 
-from daemon.profile import FocusSection, IlluminationSection, StageSection
+from drivers.sections import FocusSection, IlluminationSection, StageSection
 from drivers.sim.config import SimMotion
 
 STAGE = StageSection(

@@ -92,7 +92,7 @@ async def calibrate_and_check_blank_field(
 
     profile = scope.profile
     bits = profile.camera.bit_depth
-    x, y = scope.sim.world.well_centre_um("H12")
+    x, y = scope.truth.world.well_centre_um("H12")
     await scope.move_to(x_um=x, y_um=y)
     dark = await acquire_dark(scope, frames=dark_frames, exposure_ms=exposure_ms, gain_db=gain_db)
     store.save_dark(profile, dark, exposure_ms=exposure_ms, gain_db=gain_db, frames=dark_frames, bit_depth=bits)

@@ -38,7 +38,7 @@ IMAGE_SUM = """(() => {
 async def test_page_live_view_move_autofocus_and_demo_time_lapse(tmp_path):
     profile = web_profile(320, 240)
     async with served(tmp_path, profile, speed=1000.0) as srv, chromium() as page:
-        world = srv.station.scope.sim.world
+        world = srv.station.scope.truth.world
         await page.navigate(f"{srv.url}#token={srv.token}")
         # Signed in from the link: the token left the address bar and went to local storage.
         await page.wait_for("document.getElementById('signin-btn').textContent === 'Signed in'")
@@ -74,7 +74,7 @@ async def test_page_live_view_move_autofocus_and_demo_time_lapse(tmp_path):
         })()""")
         assert await wait_for(lambda: abs(srv.station.scope.last_position.z_um - 1470) < 0.01, timeout_s=20)
         await srv.station.scope.position()
-        physical = srv.station.scope.sim.emulator.physical_position()
+        physical = srv.station.scope.truth.emulator.physical_position()
         assert world.well_at(physical.x_um, physical.y_um) == "C5"  # the simulated mechanics went there
         await page.screenshot(ARTIFACTS / "browser-live.png")
 

@@ -22,7 +22,6 @@ import numpy as np
 import pytest
 import tifffile
 
-from daemon.profile import CameraSection
 from drivers.base import Camera, CameraError
 from drivers.camera_board import MISSING_LIBRARY, BoardCamera, boot_time_ns, main_stream_to_mono
 from drivers.camera_common import (
@@ -32,8 +31,9 @@ from drivers.camera_common import (
     db_to_amplitude_factor,
     to_mono,
 )
-from drivers.camera_opencv import OpenCVCamera, exposure_ms_to_v4l2, parse_device, v4l2_to_exposure_ms
-from drivers.camera_replay import ReplayCamera
+from drivers.camera_opencv import OpenCVCamera, OpenCVOptions, exposure_ms_to_v4l2, parse_device, v4l2_to_exposure_ms
+from drivers.camera_replay import ReplayCamera, ReplayOptions
+from drivers.sections import CameraSection
 
 
 class VirtualClock:
@@ -60,9 +60,11 @@ def bt601_luma(r: float, g: float, b: float) -> float:
 
 
 def cam_section(**changes: Any) -> CameraSection:
+    """An opencv [camera]: common options and the driver's own (device, reconnect_max_s) together."""
     base = {"driver": "opencv", "device": "3", "width_px": 64, "height_px": 48, "flush_frames": 2}
     base.update(changes)
-    return CameraSection(**base)
+    own = {name: base.pop(name) for name in ("device", "reconnect_max_s") if name in base}
+    return CameraSection(**base, options=OpenCVOptions(**own))
 
 
 # ------------------------------------------------------------------------ common
@@ -442,7 +444,7 @@ async def test_raw_16_bit_frames_are_unpacked_for_deep_cameras() -> None:
 
 
 def replay_section(folder: Path, **changes: Any) -> CameraSection:
-    return CameraSection(driver="replay", replay_dir=str(folder), replay_fps=15.0, **changes)
+    return CameraSection(driver="replay", options=ReplayOptions(replay_dir=str(folder), replay_fps=15.0), **changes)
 
 
 def write_mixed_folder(folder: Path) -> list[np.ndarray]:

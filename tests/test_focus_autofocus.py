@@ -50,8 +50,8 @@ def objective_profile(name: str, **changes: object) -> Profile:
 
 async def go_to_well(scope: Scope, well: str = WELL) -> float:
     """Move over ``well`` (focus unchanged) and return the true focal plane there."""
-    assert scope.sim is not None
-    x, y = scope.sim.world.well_centre_um(well)
+    assert scope.truth.known
+    x, y = scope.truth.world.well_centre_um(well)
     await scope.move_to(x_um=x, y_um=y)
     truth = scope.true_focus_z_um()
     assert truth is not None
@@ -142,13 +142,13 @@ async def test_every_frame_and_the_final_plane_are_reached_from_below() -> None:
     # positions are repeatable only when always approached from the same side.
     profile = objective_profile("10x")
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         truth = await go_to_well(scope)
         await scope.move_to(z_um=truth + 40.0)
-        first = len(scope.sim.emulator.received)
+        first = len(scope.truth.emulator.received)
         result = await autofocus(scope)
         assert result.found
-        lines = list(scope.sim.emulator.received)
+        lines = list(scope.truth.emulator.received)
     z_moves = z_commands_um(lines)
     exposures = [i for i, (_, line) in enumerate(lines) if i >= first and re.match(r"M106\b", line)]
     assert len(exposures) == result.frames
@@ -204,14 +204,14 @@ async def test_focus_never_goes_above_the_safe_limit(start_below_limit_um: float
     limit = truth + 20.0
     profile = objective_profile("10x", **{"focus.z_safe_max_um": limit})
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         await go_to_well(scope)
         await scope.move_to(z_um=limit - start_below_limit_um)
         points: list[FocusPoint] = []
         result = await autofocus(scope, on_point=points.append)
         assert result.found and abs(result.z_um - result.true_z_um) <= profile.optics.depth_of_field_um / 4
         assert points == result.curve
-        zs = [z for _, z in z_commands_um(list(scope.sim.emulator.received))]
+        zs = [z for _, z in z_commands_um(list(scope.truth.emulator.received))]
         assert max(zs) <= limit + 1e-3
         assert max(p.z_um for p in result.curve) <= limit + 1e-3
 
@@ -223,12 +223,12 @@ async def test_focal_plane_above_the_safe_limit_is_reported_not_chased() -> None
     limit = truth - 40.0
     profile = objective_profile("10x", **{"focus.z_safe_max_um": limit})
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         await go_to_well(scope)
         await scope.move_to(z_um=limit - 100.0)
         result = await autofocus(scope)
         assert not result.found
-        zs = [z for _, z in z_commands_um(list(scope.sim.emulator.received))]
+        zs = [z for _, z in z_commands_um(list(scope.truth.emulator.received))]
         assert max(zs) <= limit + 1e-3
         assert (await scope.position()).z_um <= limit
 
@@ -308,13 +308,13 @@ async def test_sparse_and_empty_fields_never_report_a_false_focus() -> None:
     d = profile.optics.depth_of_field_um
     outcomes = []
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         for well, dx, dy, start_error in SPARSE_SITES:
-            cx, cy = scope.sim.world.well_centre_um(well)
+            cx, cy = scope.truth.world.well_centre_um(well)
             await scope.move_to(x_um=cx + dx, y_um=cy + dy)
             truth = scope.true_focus_z_um()
             assert truth is not None
-            cover = scope.sim.world.true_confluence(cx + dx, cy + dy, scope.clock.now())
+            cover = scope.truth.world.true_confluence(cx + dx, cy + dy, scope.clock.now())
             await scope.move_to(z_um=truth + start_error)
             result = await autofocus(scope)
             outcomes.append((well, cover, result.found, result.z_um - truth, result.message))

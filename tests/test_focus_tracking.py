@@ -37,8 +37,8 @@ def drifting_profile(**changes: object) -> Profile:
 
 
 async def visit(scope: Scope, tracker: FocusTracker, well: str) -> tuple[object, float]:
-    assert scope.sim is not None
-    x, y = scope.sim.world.well_centre_um(well)
+    assert scope.truth.known
+    x, y = scope.truth.world.well_centre_um(well)
     await scope.move_to(x_um=x, y_um=y)
     result = await tracker.focus(scope, well, x, y)
     return result, x
@@ -120,13 +120,13 @@ async def test_no_focus_keeps_the_predicted_plane_and_the_history() -> None:
     profile = drifting_profile(**{"sim.focal_plane.drift_um": 0.0})
     tracker = FocusTracker(profile)
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         await scope.move_to(z_um=profile.focus.nominal_z_um)
         good, _ = await visit(scope, tracker, "C6")
         assert good.found
         planes_before = list(tracker.keys["C6"].planes)
         # The same key, but the stage now looks at the empty well H12 (a bubble, say).
-        x, y = scope.sim.world.well_centre_um("H12")
+        x, y = scope.truth.world.well_centre_um("H12")
         await scope.move_to(x_um=x, y_um=y)
         predicted = tracker.predict_z_um("C6", x, y, scope.clock.now())
         result = await tracker.focus(scope, "C6", x, y)
@@ -147,10 +147,10 @@ async def test_row_h_after_row_a_is_searched_near_the_plate_not_millimetres_off(
     tracker = FocusTracker(profile)
     misses = []
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         await scope.move_to(z_um=profile.focus.nominal_z_um)
         for well in [f"A{c}" for c in range(1, 13)] + ["H11", "H8", "H4", "H1"]:
-            x, y = scope.sim.world.well_centre_um(well)
+            x, y = scope.truth.world.well_centre_um(well)
             await scope.move_to(x_um=x, y_um=y)
             truth = scope.true_focus_z_um()
             assert truth is not None
@@ -183,7 +183,7 @@ async def test_a_50_um_jump_between_time_points_is_found_or_reported_never_faked
     tracker = FocusTracker(profile)
     wells = ("B2", "B5", "D3", "E10")
     async with sim_scope(profile, speed=SPEED) as scope:
-        assert scope.sim is not None
+        assert scope.truth.known
         await scope.move_to(z_um=profile.focus.nominal_z_um)
         t0 = scope.clock.now()
         results = []

@@ -15,7 +15,7 @@ from collections.abc import AsyncIterator
 
 import pytest
 
-from daemon.profile import IlluminationSection, StageSection
+from drivers.sections import IlluminationSection, StageSection
 from drivers.base import LimitError, MotionController, MotionError, Position, PositionUnknownError
 from drivers.clock import ScaledClock
 from drivers.gcode import GcodeController

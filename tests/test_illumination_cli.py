@@ -99,8 +99,8 @@ async def _write_positions(folder: Path, profile_path: Path, n: int, exposure_ms
     wells = [f"{r}{c}" for r in "ABCDEF" for c in (2, 5, 8, 11)]
     async with sim_scope(profile, speed=10000.0) as scope:
         for i, well in enumerate(wells[:n]):
-            x, y = scope.sim.world.well_centre_um(well)
-            z = scope.sim.world.true_focus_z_um(x, y, scope.clock.now())
+            x, y = scope.truth.world.well_centre_um(well)
+            z = scope.truth.world.true_focus_z_um(x, y, scope.clock.now())
             pos = await scope.move_to(x_um=x + 400.0 * (i % 3), y_um=y, z_um=z)
             frame = await scope.capture(exposure_ms=exposure_ms)
             write_tiff(folder / f"{well}.tif", frame, pixel_size_um=profile.optics.pixel_size_um,

@@ -24,7 +24,7 @@ async def test_corrected_blank_field_is_flat_to_one_percent(tmp_path: Path, chan
     store = CalibrationStore(tmp_path / "calibration")
     async with sim_scope(profile, speed=10000.0) as scope:
         dark, flat, check = await calibrate_and_check_blank_field(scope, store)
-        truth = scope.sim.world.illumination_map()
+        truth = scope.truth.world.illumination_map()
     assert check["before_fraction"] >= before_at_least
     assert check["after_fraction"] <= 0.01
     # The flat's shading is the simulator's illumination map (PRNU of 1 % per pixel aside).

@@ -254,7 +254,7 @@ async def test_controller_reset_and_camera_unplug_fail_one_position_each_and_the
 
         def act(e: dict[str, Any]) -> None:
             if e["type"] == "progress" and e.get("index") == 1 and e["tp"] == 0:
-                scope.sim.emulator.inject("reset")  # controller reboots: position lost
+                scope.truth.emulator.inject("reset")  # controller reboots: position lost
             if e["type"] == "progress" and e.get("index") == 2 and e["tp"] == 1:
                 state["unplugged"], state["open_fails"] = True, 1
         driver.actions.append(act)
@@ -336,7 +336,7 @@ async def test_correction_saves_both_kinds_and_says_so_when_uncalibrated(tmp_pat
     store = CalibrationStore(data / "calibration")
     cam = profile.camera
     async with sim_scope(profile, speed=SPEED) as scope:
-        x, y = scope.sim.world.well_centre_um("H12")  # the sim plate's empty well: a blank field
+        x, y = scope.truth.world.well_centre_um("H12")  # the sim plate's empty well: a blank field
         await scope.move_to(x_um=x, y_um=y, z_um=profile.sim.focal_plane.z0_um)
         dark = await acquire_dark(scope, frames=4, exposure_ms=cam.exposure_ms, gain_db=cam.gain_db)
         flat = await acquire_flat(scope, frames=4, exposure_ms=cam.exposure_ms, gain_db=cam.gain_db, defocus_um=200.0)

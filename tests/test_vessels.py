@@ -13,6 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from daemon.cli import main as cli_main
+from daemon.profile import load_profile
 from drivers.options import ConfigError
 from daemon.vessels.geometry import (
     SLAS_LENGTH_MM,
@@ -31,6 +32,8 @@ from daemon.vessels.stage_map import (
     save_stage_map,
     sim_stage_map,
     stage_map_path,
+    well_at_stage,
+    well_position_um,
 )
 from drivers.sim.plate import PlateLayout
 from tests.helpers import sim_profile
@@ -376,9 +379,44 @@ def test_simulated_scope_map_puts_wells_where_the_simulator_has_them(tmp_path: P
 
 
 def test_real_scope_without_a_map_says_how_to_teach(tmp_path: Path) -> None:
-    profile = sim_profile(sim=None, **{"camera.driver": "opencv", "stage.driver": "gcode", "stage.port": "/dev/ttyUSB0"})
+    profile = load_profile("usb-gcode")
     with pytest.raises(ConfigError, match="phasewatch vessel teach 96-well A1=X,Y H12=X,Y"):
         load_stage_map(tmp_path, profile)
+
+
+def test_well_at_stage_inverts_a_taught_map_on_a_real_scope(tmp_path: Path) -> None:
+    """On a scope with no simulator the well under the objective comes from the taught map
+    and the vessel's geometry alone."""
+    profile = load_profile("usb-gcode")
+    truth = _true_map(offset=(3150.0, -420.0), rotation_deg=-1.2, scale=1.002)
+    smap, _ = fit_stage_map(get_vessel("96-well"), _teach(truth, ["A1", "H12", "A12"]))
+    save_stage_map(tmp_path, profile, smap)
+    v = get_vessel("96-well")
+    for name in ("A1", "B3", "D7", "H12"):
+        x, y = well_position_um(tmp_path, profile, name)
+        assert well_at_stage(tmp_path, profile, x, y) == name
+        # The built-in 96-well bottoms are 6.4 mm across on a 9 mm pitch (daemon/data/vessels.toml):
+        # 3 mm from the centre is still inside, 3.5 mm is in the wall between wells.
+        w = v.well(name)
+        assert well_at_stage(tmp_path, profile, *smap.to_stage_um(w.x_mm + 3.0, w.y_mm)) == name
+        assert well_at_stage(tmp_path, profile, *smap.to_stage_um(w.x_mm + 3.5, w.y_mm)) is None
+    assert well_at_stage(tmp_path, profile, *smap.to_stage_um(-5.0, -5.0)) is None  # off the plate
+    assert well_at_stage(tmp_path, profile, *smap.to_stage_um(4.5, 4.5)) is None  # plate corner, before A1
+
+
+def test_well_at_stage_agrees_with_the_simulator_on_the_simulated_scope(tmp_path: Path) -> None:
+    profile = sim_profile()
+    layout = PlateLayout(profile.sim.plate)  # the simulator's own truth
+    rng = np.random.default_rng(412)
+    xs = rng.uniform(0.0, 127760.0, 400)
+    ys = rng.uniform(0.0, 85480.0, 400)
+    for x, y in zip(xs, ys):
+        assert well_at_stage(tmp_path, profile, float(x), float(y)) == layout.well_at(float(x), float(y))
+
+
+def test_well_at_stage_without_a_map_says_how_to_teach(tmp_path: Path) -> None:
+    with pytest.raises(ConfigError, match="phasewatch vessel teach"):
+        well_at_stage(tmp_path, load_profile("usb-gcode"), 1000.0, 1000.0)
 
 
 # --- phasewatch vessel ------------------------------------------------------------------

@@ -126,7 +126,7 @@ async def test_frame_jpeg_decodes_and_can_be_reduced(tmp_path):
 
 async def test_moves_absolute_relative_and_to_a_well(tmp_path):
     async with served(tmp_path) as srv:
-        world = srv.station.scope.sim.world
+        world = srv.station.scope.truth.world
         async with srv.session.post(srv.u("/api/v1/stage/move"), headers=srv.auth, json={"well": "C4", "z_um": 1500}) as r:
             assert r.status == 200, await r.text()
             out = await r.json()

@@ -25,6 +25,8 @@ from daemon.commands.common import print_json
 from daemon.culture.confluence import confluence, overlay
 from daemon.culture.counting import count_cells
 from daemon.profile import Profile, load_profile
+from drivers.registry import offline_truth
+from drivers.truth import GroundTruth
 
 IMAGE_SUFFIXES = (".tif", ".tiff", ".png", ".jpg", ".jpeg", ".bmp")
 OVERLAY_SUFFIX = "-overlay.png"
@@ -128,39 +130,35 @@ def read_image(path: Path) -> FrameInfo:
     return info
 
 
-class SimTruth:
-    """The simulator's true coverage of a saved frame's field, for truth-beside-estimate.
+class FrameTruth:
+    """The true coverage of a saved frame's field, where the profile's drivers know it
+    (the simulator), for truth-beside-estimate.
 
     The frame must carry its stage position and time and match the profile's pixel size;
-    the simulated world is rebuilt once per frame size so its field is the frame's.
+    the truth is rebuilt once per frame size so that its field is the frame's.
     """
 
     def __init__(self, profile: Profile) -> None:
         self.profile = profile
-        self._worlds: dict[tuple[int, int], object] = {}
+        self._by_shape: dict[tuple[int, int], GroundTruth] = {}
 
     def coverage(self, info: FrameInfo) -> float | None:
-        if None in (info.x_um, info.y_um, info.t_s):
+        if info.x_um is None or info.y_um is None or info.t_s is None:
             return None
         optics_px = self.profile.optics.pixel_size_um
         if info.pixel_size_um is not None and abs(info.pixel_size_um - optics_px) > 0.01 * optics_px:
             return None
-        from drivers.sim.world import SimWorld
-
         h, w = info.pixels.shape
         if min(h, w) < 16:  # smaller than any camera a profile allows
             return None
-        world = self._worlds.get((h, w))
-        if world is None:
-            camera = dataclasses.replace(self.profile.camera, width_px=w, height_px=h)
-            world = self._worlds[(h, w)] = SimWorld(dataclasses.replace(self.profile, camera=camera))
-        if world.well_at(info.x_um, info.y_um) is None:  # type: ignore[attr-defined]
-            return None
-        return float(world.true_confluence(info.x_um, info.y_um, info.t_s))  # type: ignore[attr-defined]
+        truth = self._by_shape.get((h, w))
+        if truth is None:
+            truth = self._by_shape[(h, w)] = offline_truth(self.profile, frame_shape=(h, w))
+        return truth.field_coverage(info.x_um, info.y_um, info.t_s)
 
 
 def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_dir: Path | None,
-                  root: Path, truth: SimTruth | None = None) -> dict[str, object]:
+                  root: Path, truth: FrameTruth | None = None) -> dict[str, object]:
     result = confluence(info.pixels, pixel_size_um=pixel_size_um, return_mask=True)
     count = count_cells(info.pixels, pixel_size_um=pixel_size_um, confluence=result.fraction, mask=result.mask)
     row: dict[str, object] = {
@@ -203,7 +201,7 @@ def _describe(row: dict[str, object]) -> str:
 def analyze_all(args: argparse.Namespace) -> tuple[list[dict[str, object]], list[str]]:
     files = find_images(args.path)
     profile = load_profile(args.profile)
-    truth = SimTruth(profile) if profile.is_simulated and profile.sim is not None else None
+    truth = FrameTruth(profile)
     rows: list[dict[str, object]] = []
     problems: list[str] = []
     root = args.path if args.path.is_dir() else args.path.parent

@@ -37,6 +37,7 @@ from daemon.illumination.inputs import expand_paths, read_input
 from daemon.illumination.retrospective import RetrospectiveFlatBuilder
 from daemon.profile import Profile, load_profile
 from daemon.scope import Scope
+from drivers.registry import offline_truth
 
 EXIT_CALIBRATION = 2
 
@@ -112,15 +113,8 @@ def _fail(exc: CalibrationError) -> int:
     return EXIT_CALIBRATION
 
 
-def _sensor_truth(scope: Scope) -> dict[str, Any] | None:
-    if scope.sim is None:
-        return None
-    truth = getattr(scope.sim.world, "sensor_truth", None)
-    return dict(truth) if truth else None
-
-
 def _true_dark_dn(truth: dict[str, Any] | None, exposure_ms: float, gain_db: float) -> float | None:
-    """The simulator's mean dark level: black level plus K × dark current × exposure."""
+    """The true mean dark level (simulator): black level plus K × dark current × exposure."""
     if not truth:
         return None
     try:
@@ -154,7 +148,7 @@ async def run_dark(args: argparse.Namespace) -> int:
                 progress=stderr_progress("dark frames"),
             )
             t_s = scope.clock.now()
-            truth = _true_dark_dn(_sensor_truth(scope), exposure, gain)
+            truth = _true_dark_dn(scope.truth.sensor(gain), exposure, gain)
         path = await asyncio.to_thread(
             store.save_dark, profile, dark, exposure_ms=exposure, gain_db=gain, frames=args.frames,
             bit_depth=profile.camera.bit_depth, acquired_t_s=t_s,
@@ -177,12 +171,11 @@ async def _move_to_blank(scope: Scope, args: argparse.Namespace) -> str:
     if args.x_um is not None or args.y_um is not None:
         await scope.move_to(x_um=args.x_um, y_um=args.y_um)
         return f"x {args.x_um} um, y {args.y_um} um"
-    sim = scope.profile.sim
-    if scope.sim is not None and sim is not None and sim.plate.empty_wells:
-        well = sim.plate.empty_wells[0]
-        x, y = scope.sim.world.well_centre_um(well)
-        await scope.move_to(x_um=x, y_um=y)
-        return f"empty well {well} of the simulated plate"
+    for well in scope.truth.blank_wells():
+        centre = scope.truth.well_centre_um(well)
+        if centre is not None:
+            await scope.move_to(x_um=centre[0], y_um=centre[1])
+            return f"empty well {well} ({scope.truth.source}: no cells)"
     pos = await scope.position()
     return f"the field under the objective (x {pos.x_um:.0f} um, y {pos.y_um:.0f} um); it must be blank"
 
@@ -191,9 +184,10 @@ def _illumination_truth_error(scope: Scope, flat: np.ndarray, dark: np.ndarray) 
     """RMS of (measured shading − simulator's illumination map), both with mean 1. The
     measured shading is smoothed over 7 px first: the map holds the light, the flat also
     the sensor's pixel-to-pixel response (PRNU), which is not an error of the flat."""
-    if scope.sim is None or not hasattr(scope.sim.world, "illumination_map"):
+    light = scope.truth.illumination_map()
+    if light is None:
         return None
-    truth = np.asarray(scope.sim.world.illumination_map(), dtype=np.float64)
+    truth = np.asarray(light, dtype=np.float64)
     if truth.shape != flat.shape:
         return None
     shading = ndimage.uniform_filter(flat.astype(np.float64) - dark, size=7, mode="nearest")
@@ -331,13 +325,11 @@ async def run_retro(args: argparse.Namespace) -> int:
 
 
 def _retro_truth_error(profile: Profile, shape: np.ndarray) -> float | None:
-    if profile.sim is None:
+    # The map is the profile's full frame: a flat of another size is a crop, not comparable.
+    light = offline_truth(profile).illumination_map()
+    if light is None:
         return None
-    try:
-        from drivers.sim.world import SimWorld
-    except ImportError:
-        return None
-    truth = np.asarray(SimWorld(profile).illumination_map(), dtype=np.float64)
+    truth = np.asarray(light, dtype=np.float64)
     if truth.shape != shape.shape:
         return None
     return float(np.sqrt(np.mean((shape / shape.mean() - truth / truth.mean()) ** 2)))

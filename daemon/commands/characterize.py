@@ -55,18 +55,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def simulator_truth(scope: Scope, gain_db: float) -> dict[str, float] | None:
-    """The simulated sensor's constants at ``gain_db``, named like the estimates."""
-    if scope.sim is None:
-        return None
-    world = scope.sim.world
-    sensor = getattr(world, "sensor", None)
-    raw = sensor.truth_at(gain_db) if sensor is not None and hasattr(sensor, "truth_at") else getattr(world, "sensor_truth", None)
+    """The true sensor constants at ``gain_db`` where known (the simulator), named like the estimates."""
+    raw = scope.truth.sensor(gain_db)
     if not raw:
         return None
     truth = dict(raw)
-    if float(truth.get("gain_db", gain_db)) != gain_db:
-        # Truth quoted at another gain: K scales with the analogue gain, the rest is in electrons.
-        truth["system_gain_dn_per_e"] = float(truth["system_gain_dn_per_e"]) * 10 ** ((gain_db - float(truth["gain_db"])) / 20.0)
     out = {
         key: float(truth[key])
         for key in ("system_gain_dn_per_e", "read_noise_e", "dark_current_e_per_s", "dark_offset_dn", "dsnu_e",

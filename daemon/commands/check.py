@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
 
 import numpy as np
 
@@ -19,18 +20,26 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(func=run)
 
 
+def _options_text(options: object) -> str:
+    """' (port /dev/ttyUSB0, baud 115200)' for a driver's own options, '' when it has none."""
+    if options is None or not dataclasses.is_dataclass(options):
+        return ""
+    items = [f"{f.name} {getattr(options, f.name)}" for f in dataclasses.fields(options)]
+    return f" ({', '.join(items)})" if items else ""
+
+
 def summary(profile: Profile) -> dict[str, object]:
     o, s, f = profile.optics, profile.stage, profile.focus
     cam = profile.camera
     return {
         "profile": str(profile.path),
         "scope": profile.scope.name,
-        "camera": f"{cam.driver} {cam.width_px}x{cam.height_px} {cam.bit_depth}-bit",
+        "camera": f"{cam.driver} {cam.width_px}x{cam.height_px} {cam.bit_depth}-bit" + _options_text(cam.options),
         "objective": o.objective,
         "pixel_size_um": round(o.pixel_size_um, 4),
         "field_of_view_um": [round(cam.width_px * o.pixel_size_um, 1), round(cam.height_px * o.pixel_size_um, 1)],
         "depth_of_field_um": round(o.depth_of_field_um, 2),
-        "stage": f"{s.driver}" + (f" on {s.port} at {s.baud} baud" if s.driver == "gcode" else ""),
+        "stage": s.driver + _options_text(s.options),
         "limits_um": {"x": [s.x_min_um, s.x_max_um], "y": [s.y_min_um, s.y_max_um], "z": [f.z_min_um, f.z_safe_max_um]},
         "simulated": profile.is_simulated,
     }

@@ -69,10 +69,10 @@ async def run(args: argparse.Namespace) -> int:
             scope, metric=args.metric, centre_z_um=args.z_um, range_um=args.range_um,
             roi=tuple(args.roi) if args.roi else None,
         )
-        if scope.sim is not None and not result.found:
+        if scope.truth.known and not result.found:
             here = await scope.position()
-            if scope.sim.world.well_at(here.x_um, here.y_um) is None:
-                result.message += "; the stage is not over a well of the simulated plate (try --well B3)"
+            if scope.truth.well_at(here.x_um, here.y_um) is None:
+                result.message += f"; the {scope.truth.source} has no well under the stage (try --well B3)"
     if args.json:
         print_json(result.to_dict())
     else:

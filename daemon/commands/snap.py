@@ -90,8 +90,8 @@ async def run(args: argparse.Namespace) -> int:
     print(f"  stage x {pos.x_um:.1f} um, y {pos.y_um:.1f} um, z {truth_beside(pos.z_um, truth, 'um', '.1f')}")
     if truth is not None:
         print(f"  defocus against the simulator's focal plane: {pos.z_um - truth:+.1f} um")
-        well = scope.sim.world.well_at(pos.x_um, pos.y_um) if scope.sim else None
-        if well and scope.sim:
-            cov = scope.sim.world.true_confluence(pos.x_um, pos.y_um, frame.t_s)
+        well = scope.truth.well_at(pos.x_um, pos.y_um)
+        cov = scope.truth.field_coverage(pos.x_um, pos.y_um, frame.t_s)
+        if well and cov is not None:
             print(f"  well {well}; true coverage of this field {cov * 100:.1f} %")
     return 0

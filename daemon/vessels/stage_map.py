@@ -21,7 +21,15 @@ import numpy as np
 from skimage.transform import SimilarityTransform
 
 from drivers.options import ConfigError
-from daemon.vessels.geometry import SLAS_LENGTH_MM, SLAS_WIDTH_MM, Vessel, get_vessel, load_vessels, slas_centred_a1_mm
+from daemon.vessels.geometry import (
+    SLAS_LENGTH_MM,
+    SLAS_WIDTH_MM,
+    Vessel,
+    Well,
+    get_vessel,
+    load_vessels,
+    slas_centred_a1_mm,
+)
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
@@ -83,6 +91,14 @@ class StageMap:
         w = vessel.well(well)
         return self.to_stage_um(w.x_mm, w.y_mm)
 
+    def well_at(self, vessel: Vessel, x_um: float, y_um: float) -> str | None:
+        """The well of ``vessel`` whose bottom contains stage point (x, y); None between wells or off the vessel."""
+        x_mm, y_mm = self.to_vessel_mm(x_um, y_um)
+        for w in vessel.wells.values():
+            if well_contains(w, x_mm, y_mm):
+                return w.name
+        return None
+
     @property
     def rms_residual_um(self) -> float:
         if not self.teach:
@@ -113,6 +129,15 @@ class StageMap:
             )
         except (KeyError, TypeError, ValueError) as exc:
             raise ValueError(f"not a stage map ({exc.__class__.__name__}: {exc})") from None
+
+
+def well_contains(well: Well, x_mm: float, y_mm: float) -> bool:
+    """Whether vessel point (x, y) mm lies on the well's bottom (its edge included)."""
+    dx, dy = x_mm - well.x_mm, y_mm - well.y_mm
+    if well.shape == "circle":
+        return math.hypot(dx, dy) <= well.diameter_mm / 2.0
+    half_x, half_y = (v / 2.0 for v in well.extent_mm)
+    return abs(dx) <= half_x and abs(dy) <= half_y
 
 
 def _estimate_similarity(src: np.ndarray, dst: np.ndarray) -> SimilarityTransform | None:
@@ -299,6 +324,16 @@ def load_stage_map(data_dir: Path, profile: Profile) -> StageMap:
     )
 
 
+def _mapped_vessel(data_dir: Path, profile: Profile, vessel: str | None) -> tuple[StageMap, Vessel]:
+    smap = load_stage_map(data_dir, profile)
+    name = vessel or smap.vessel or sim_vessel_name(profile)
+    if not name:
+        raise ConfigError(
+            stage_map_path(data_dir, profile), "", "vessel", "the stage map names no vessel; say which, e.g. 96-well"
+        )
+    return smap, get_vessel(name)
+
+
 def well_position_um(
     data_dir: Path, profile: Profile, well: str, vessel: str | None = None
 ) -> tuple[float, float]:
@@ -306,10 +341,15 @@ def well_position_um(
 
     ``vessel`` defaults to the one the map was taught on (or the simulated plate's).
     """
-    smap = load_stage_map(data_dir, profile)
-    name = vessel or smap.vessel or sim_vessel_name(profile)
-    if not name:
-        raise ConfigError(
-            stage_map_path(data_dir, profile), "", "vessel", "the stage map names no vessel; say which, e.g. 96-well"
-        )
-    return smap.well_stage_um(get_vessel(name), well)
+    smap, v = _mapped_vessel(data_dir, profile, vessel)
+    return smap.well_stage_um(v, well)
+
+
+def well_at_stage(
+    data_dir: Path, profile: Profile, x_um: float, y_um: float, vessel: str | None = None
+) -> str | None:
+    """The well over stage point (x, y) by the profile's stored (or simulated) map and the
+    vessel's geometry; None between wells or off the vessel. The inverse of
+    :func:`well_position_um`; raises ConfigError when there is no map to go by."""
+    smap, v = _mapped_vessel(data_dir, profile, vessel)
+    return smap.well_at(v, x_um, y_um)

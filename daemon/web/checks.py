@@ -31,7 +31,7 @@ def only_keys(body: dict[str, Any], allowed: tuple[str, ...]) -> None:
 
 def camera_limits(name: str) -> tuple[float, float, str]:
     """(min, max, unit) of a [camera] option, as the profile loader enforces them."""
-    from daemon.profile import CameraSection
+    from drivers.sections import CameraSection
 
     meta = next(f.metadata for f in dataclasses.fields(CameraSection) if f.name == name)
     return float(meta["min"]), float(meta["max"]), str(meta["unit"])

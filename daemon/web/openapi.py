@@ -107,6 +107,8 @@ def _schemas() -> dict[str, Any]:
                 "state": {"type": "string", "enum": ["idle", "live", "busy", "acquiring", "waiting", "paused"]},
                 "holder": {"type": ["string", "null"]},
                 "position_um": {"anyOf": [position, {"type": "null"}]},
+                "well": {"type": ["string", "null"],
+                         "description": "the well under the objective by the vessel-to-stage map (null between wells or with no map)"},
                 "limits_um": {"type": "object"},
                 "profile": {"type": "object"},
                 "active_timelapse": {"type": ["object", "null"]},

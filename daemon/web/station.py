@@ -254,10 +254,16 @@ class Station:
         return well_position_um(self.data_dir, self.profile, well)
 
     def well_here(self, pos: Position | None) -> str | None:
-        """The well under the objective: the simulator's truth on the simulated scope."""
-        if pos is None or self.scope.sim is None:
+        """The well under the objective by the vessel-to-stage map; None between wells, off
+        the vessel, or while no map has been taught."""
+        from daemon.vessels.stage_map import well_at_stage
+
+        if pos is None:
             return None
-        return self.scope.sim.world.well_at(pos.x_um, pos.y_um)
+        try:
+            return well_at_stage(self.data_dir, self.profile, pos.x_um, pos.y_um)
+        except ConfigError:
+            return None
 
     async def autofocus(self, body: dict[str, Any]) -> dict[str, Any]:
         from daemon.focus.autofocus import FocusPoint, autofocus
@@ -536,16 +542,18 @@ class Station:
         scope = self.scope
         pos = scope.last_position
         truth = None
-        if scope.sim is not None and pos is not None:
+        if scope.truth.known and pos is not None:
+            true_z_um = scope.true_focus_z_um()
             truth = {
-                "focus_z_um": round(scope.true_focus_z_um() or 0.0, 3),
-                "well": self.well_here(pos),
+                "focus_z_um": None if true_z_um is None else round(true_z_um, 3),
+                "well": scope.truth.well_at(pos.x_um, pos.y_um),
             }
         return {
             "state": self.state_word(),
             "holder": scope.holder,
             "manual_control": {"allowed": self.refusal() is None, "reason": self.refusal()},
             "position_um": _position_dict(pos),
+            "well": self.well_here(pos),
             "limits_um": {
                 "x": [p.stage.x_min_um, p.stage.x_max_um],
                 "y": [p.stage.y_min_um, p.stage.y_max_um],

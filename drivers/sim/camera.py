@@ -10,18 +10,22 @@ can be stale.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 from drivers.base import CameraError, Frame, Position
 from drivers.camera_common import EXPOSURE_RANGE_MS, GAIN_RANGE_DB, check_exposure_ms, check_gain_db
 from drivers.clock import Clock
+from drivers.options import ConfigError
+from drivers.registry import CameraContext, CameraDriver
+from drivers.sim.bench import SimBench
 
 if TYPE_CHECKING:
-    from daemon.profile import CameraSection
+    from drivers.sections import CameraSection
     from drivers.sim.world import SimWorld
 
-DRIVER = "simulated"
+LABEL = "simulated"  # how the camera names itself in messages and describe()
 
 
 class SimCamera:
@@ -38,8 +42,8 @@ class SimCamera:
         self._clock = clock
         self._position_source = position_source
         self._lamp_source = lamp_source
-        self._exposure_ms = check_exposure_ms(camera.exposure_ms, driver=DRIVER)
-        self._gain_db = check_gain_db(camera.gain_db, driver=DRIVER)
+        self._exposure_ms = check_exposure_ms(camera.exposure_ms, driver=LABEL)
+        self._gain_db = check_gain_db(camera.gain_db, driver=LABEL)
         self._open = False
         self._grab_lock = asyncio.Lock()
         self.frames_grabbed = 0
@@ -51,10 +55,10 @@ class SimCamera:
         self._open = False
 
     async def set_exposure_ms(self, exposure_ms: float) -> None:
-        self._exposure_ms = check_exposure_ms(exposure_ms, driver=DRIVER)
+        self._exposure_ms = check_exposure_ms(exposure_ms, driver=LABEL)
 
     async def set_gain_db(self, gain_db: float) -> None:
-        self._gain_db = check_gain_db(gain_db, driver=DRIVER)
+        self._gain_db = check_gain_db(gain_db, driver=LABEL)
 
     @property
     def exposure_ms(self) -> float:
@@ -95,7 +99,7 @@ class SimCamera:
         h, w = self._world.shape
         return {
             "driver": "sim",
-            "model": DRIVER,
+            "model": LABEL,
             "device": "simulated scope",
             "resolution": {"width_px": w, "height_px": h},
             "bit_depth": self._cfg.bit_depth,
@@ -109,3 +113,29 @@ class SimCamera:
             },
             "open": self._open,
         }
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimCameraOptions:
+    """The simulated camera takes its sensor from [sim.sensor]; nothing more in [camera]."""
+
+
+def open_camera(ctx: CameraContext) -> SimCamera:
+    bench = ctx.stage.bench
+    if not isinstance(bench, SimBench):
+        raise ConfigError(
+            ctx.profile.path, "camera", "driver",
+            'the sim camera images the simulated stage; set [stage] driver = "sim" too',
+        )
+    return SimCamera(
+        bench.world, ctx.profile.camera, ctx.clock, position_source=bench.position, lamp_source=bench.lamp_level
+    )
+
+
+DRIVER = CameraDriver(
+    name="sim",
+    summary="the simulated camera: renders the simulated culture under the simulated stage",
+    options=SimCameraOptions,
+    open=open_camera,
+    simulated=True,
+)

@@ -40,7 +40,7 @@ from drivers.sim.plate import PlateLayout
 from drivers.sim.sensor import Sensor
 
 if TYPE_CHECKING:
-    from daemon.profile import Profile
+    from drivers.sections import HardwareSections
 
 PAD_MIN_UM = 22.0  # sample beyond the frame on every side, so the FFT's wrap-around stays outside
 KEEP_FIELDS = 2  # rendered fields kept (a focus sweep reuses one); ~8 MB each at 1280x960
@@ -68,7 +68,7 @@ def parse_start_time(text: str) -> float:
 
 
 class SimWorld:
-    def __init__(self, profile: Profile) -> None:
+    def __init__(self, profile: HardwareSections) -> None:
         sim = profile.sim
         if sim is None:
             raise ConfigError(profile.path, "sim", None, "missing section [sim]: the simulated scope needs it")

@@ -88,8 +88,8 @@ class Trial:
 
 async def _field_with_cells(scope: Scope, rng: np.random.Generator, wells: list[str]) -> tuple[float, float]:
     """A random site in a random well that shows cells (at most 40 tries)."""
-    assert scope.sim is not None
-    world = scope.sim.world
+    assert scope.truth.known
+    world = scope.truth.world
     for _ in range(40):
         cx, cy = world.well_centre_um(wells[int(rng.integers(len(wells)))])
         r, a = 2500.0 * np.sqrt(rng.uniform()), rng.uniform(0, 2 * np.pi)
@@ -129,8 +129,8 @@ async def _cold_trials(profile: Profile) -> list[Trial]:
 
 async def _bare_field(scope: Scope, rng: np.random.Generator, profile: Profile) -> tuple[float, float]:
     """A random site with under MIN_COVER of cells (an empty well's when none turns up in 80 tries)."""
-    assert scope.sim is not None and profile.sim is not None
-    world = scope.sim.world
+    assert scope.truth.known and profile.sim is not None
+    world = scope.truth.world
     plate = profile.sim.plate
     names = [f"{chr(65 + r)}{c + 1}" for r in range(plate.rows) for c in range(plate.columns)]
     for _ in range(80):

@@ -91,6 +91,8 @@ def hardware_profile(folder: Path, images: Path, port: str) -> Path:
     path = replay_profile(folder, images, 1280, 960)
     text = path.read_text().replace('[stage]\ndriver = "sim"', f'[stage]\ndriver = "gcode"\nport = "{port}"')
     assert f'port = "{port}"' in text
+    # No simulated driver is left, so the [sim] sections (the rest of the file) must go too.
+    text = text.partition("\n[sim]")[0] + "\n"
     path.write_text(text)
     return path
 

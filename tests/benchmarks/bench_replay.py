@@ -16,8 +16,8 @@ from pathlib import Path
 import cv2
 import numpy as np
 
-from daemon.profile import CameraSection
-from drivers.camera_replay import ReplayCamera
+from drivers.sections import CameraSection
+from drivers.camera_replay import ReplayCamera, ReplayOptions
 from drivers.clock import WallClock
 
 WIDTH_PX, HEIGHT_PX = 1280, 720
@@ -36,7 +36,7 @@ def write_folder(folder: Path) -> None:
 
 async def paced_stream(folder: Path) -> tuple[float, float]:
     """Frames per second delivered and CPU cores used while streaming on the wall clock."""
-    cam = ReplayCamera(CameraSection(driver="replay", replay_dir=str(folder), replay_fps=STREAM_FPS), WallClock())
+    cam = ReplayCamera(CameraSection(driver="replay", options=ReplayOptions(replay_dir=str(folder), replay_fps=STREAM_FPS)), WallClock())
     await cam.open()
     for _ in range(FRAMES_IN_FOLDER):  # one loop to fill the cache, as a running stream would have
         await cam.grab()
@@ -68,7 +68,7 @@ class InstantClock:
 async def cost_per_grab_ms(folder: Path, *, cache_bytes: int, grabs: int) -> float:
     """Software time per grab with the pacing waits taken out."""
     cam = ReplayCamera(
-        CameraSection(driver="replay", replay_dir=str(folder), replay_fps=STREAM_FPS),
+        CameraSection(driver="replay", options=ReplayOptions(replay_dir=str(folder), replay_fps=STREAM_FPS)),
         InstantClock(),
         cache_bytes=cache_bytes,
     )

@@ -118,7 +118,7 @@ async def _sim_time_point() -> list[dict[str, Any]]:
         data_dir = Path(tmp)
         index = open_index(data_dir)
         scope = sim_scope(profile, speed=SIM_SPEED, data_dir=data_dir)
-        world = scope.sim.world  # type: ignore[union-attr]
+        world = scope.truth.world  # type: ignore[attr-defined]
         render_s = [0.0]
         original = world.render
 

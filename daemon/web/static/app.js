@@ -160,13 +160,14 @@ async function refreshStatus() {
   $("pos-y").textContent = p ? um(p.y_um, 0) : "—";
   $("pos-z").textContent = p ? um(p.z_um, 1) : "—";
   $("objective").textContent = `${s.profile.objective} · ${s.profile.pixel_size_um} µm/px`;
+  // The well comes from the vessel-to-stage map; the simulator's truth is shown beside it when they differ.
+  let well = p ? s.well || "between wells" : "—";
   if (s.simulator) {
     $("truth-row").hidden = false;
     $("truth-z").textContent = um(s.simulator.focus_z_um, 1);
-    $("pos-well").textContent = s.simulator.well || "between wells";
-  } else {
-    $("pos-well").textContent = "—";
+    if (p && (s.simulator.well || null) !== (s.well || null)) well += ` (simulator: ${s.simulator.well || "between wells"})`;
   }
+  $("pos-well").textContent = well;
   const lim = s.limits_um;
   $("limits").textContent = `soft limits: x ${lim.x[0]}…${lim.x[1]} µm, y ${lim.y[0]}…${lim.y[1]} µm, focus ${lim.z[0]}…${lim.z[1]} µm`;
   for (const [id, axis] of [["abs-x", "x"], ["abs-y", "y"], ["abs-z", "z"]]) {
