@@ -110,3 +110,113 @@ def test_check_missing_serial_port_is_one_line_no_traceback(tmp_path: Path) -> N
     assert "Traceback" not in proc.stderr
     assert "ttyNOPE" in proc.stderr
     assert proc.stderr.strip().count("\n") == 0
+
+
+USB = (PROFILE_DIR / "usb-gcode.toml").read_text()
+
+
+def usb_edit(old: str, new: str) -> str:
+    assert old in USB, old
+    return USB.replace(old, new, 1)
+
+
+@pytest.mark.parametrize(
+    ("text", "section", "option", "fragments"),
+    [
+        (
+            usb_edit('device = "/dev/video0"', 'device = "/dev/video0"\nreplay_dir = "/srv/lr0412"'),
+            "camera", "replay_dir",
+            ["is an option of the 'replay' camera driver, not of 'opencv'",
+             "the opencv driver takes device, reconnect_max_s beside the common [camera] options"],
+        ),
+        (
+            usb_edit('driver = "opencv"\ndevice = "/dev/video0"', 'driver = "board"\ndevice = "/dev/video0"'),
+            "camera", "device",
+            ["is an option of the 'opencv' camera driver, not of 'board'", "the board driver takes no options of its own"],
+        ),
+        (
+            edit('[stage]\ndriver = "sim"', '[stage]\ndriver = "sim"\nport = "/dev/ttyUSB0"'),
+            "stage", "port",
+            ["is an option of the 'gcode' stage driver, not of 'sim'", "the sim driver takes no options of its own"],
+        ),
+        (
+            usb_edit("baud = 115200", "baud = 115200\nbaudrate = 9600"),
+            "stage", "baudrate",
+            ["unknown option (did you mean 'baud'?)", "allowed here:", "port", "xy_speed_um_s"],
+        ),
+        (
+            usb_edit('driver = "gcode"', 'driver = "grbl"'),
+            "stage", "driver",
+            ["must be one of 'sim', 'gcode' (the registered stage drivers), got 'grbl'"],
+        ),
+        (
+            usb_edit('driver = "opencv"', 'driver = "opnecv"'),
+            "camera", "driver",
+            ["must be one of 'sim', 'opencv', 'replay', 'board' (the registered camera drivers)", "did you mean 'opencv'"],
+        ),
+        (
+            usb_edit('driver = "opencv"', "driver = 3"),
+            "camera", "driver", ["must be one of 'sim', 'opencv', 'replay', 'board'", "got 3"],
+        ),
+        (
+            usb_edit('driver = "opencv"\n', ""),
+            "camera", "driver", ["missing required option; set it to one of 'sim', 'opencv', 'replay', 'board'"],
+        ),
+        (
+            usb_edit('device = "/dev/video0"', 'device = "/dev/video0"\nreconnect_max_s = 0.0'),
+            "camera", "reconnect_max_s", ["must be a number from 0.1 to 3600.0 s"],
+        ),
+        (
+            usb_edit("baud = 115200", "baud = 115201"),
+            "stage", "baud", ["one of 9600, 19200"],
+        ),
+        (
+            USB + "\n[sim]\nseed = 7\n",
+            "sim", None,
+            ["[sim] sets up the simulated scope, but neither the 'opencv' camera nor the 'gcode' stage is simulated",
+             "remove [sim]"],
+        ),
+        (
+            usb_edit('driver = "opencv"\ndevice = "/dev/video0"', 'driver = "sim"'),
+            "camera", "driver",
+            ["the sim camera images the simulated stage; set [stage] driver = 'sim' too"],
+        ),
+        (
+            SIM.split("[sim]")[0],
+            "sim", None, ["missing section [sim]: the sim drivers need it"],
+        ),
+    ],
+)
+def test_driver_options_are_checked_against_the_chosen_driver(
+    tmp_path: Path, text: str, section: str, option: str | None, fragments: list[str]
+) -> None:
+    path = write(tmp_path, text)
+    with pytest.raises(ConfigError) as info:
+        load_profile(path)
+    err = info.value
+    assert (err.file, err.section, err.option) == (str(path), section, option)
+    for fragment in fragments:
+        assert fragment in str(err)
+    assert "\n" not in str(err)
+
+
+def test_each_driver_gets_its_own_options(tmp_path: Path) -> None:
+    from drivers.camera_opencv import OpenCVOptions
+    from drivers.camera_replay import ReplayOptions
+    from drivers.gcode import GcodeOptions
+
+    usb = load_profile("usb-gcode")
+    assert usb.camera.options == OpenCVOptions(device="/dev/video0", reconnect_max_s=30.0)
+    assert usb.stage.options == GcodeOptions(port="/dev/ttyUSB0", baud=115200)
+    assert usb.sim is None and not usb.is_simulated
+    # The simulated stage with a replay camera: a real camera driver over the simulated scope.
+    text = edit('[camera]\ndriver = "sim"', '[camera]\ndriver = "replay"\nreplay_dir = "/srv/lr0412"\nreplay_fps = 12.5')
+    replay = load_profile(write(tmp_path, text))
+    assert replay.camera.options == ReplayOptions(replay_dir="/srv/lr0412", replay_fps=12.5)
+    assert replay.is_simulated and replay.sim is not None
+
+
+def test_replay_camera_needs_a_folder(tmp_path: Path) -> None:
+    text = edit('[camera]\ndriver = "sim"', '[camera]\ndriver = "replay"')
+    with pytest.raises(ConfigError, match=r"\[camera\] replay_dir: the replay driver needs a folder of images"):
+        load_profile(write(tmp_path, text))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import re
@@ -10,6 +11,7 @@ import cv2
 import numpy as np
 import pytest
 
+from daemon.vessels.stage_map import save_stage_map, sim_stage_map
 from daemon.web.auth import MAX_FAILURES, VIEW_COOKIE
 from daemon.web.keys import AUTH
 from tests.helpers import sim_profile
@@ -144,6 +146,28 @@ async def test_moves_absolute_relative_and_to_a_well(tmp_path):
         assert math.isclose(rel["z_um"], 1495.0, abs_tol=0.01)
         pos = await srv.station.scope.position()
         assert math.isclose(pos.x_um, rel["x_um"], abs_tol=0.01)
+
+
+async def test_the_well_readout_goes_through_the_stage_map_with_the_simulator_beside_it(tmp_path):
+    async with served(tmp_path) as srv:
+        world = srv.station.scope.truth.world
+        x, y = world.well_centre_um("C4")
+        async with srv.session.post(srv.u("/api/v1/stage/move"), headers=srv.auth, json={"x_um": x, "y_um": y}) as r:
+            assert r.status == 200
+        async with srv.session.get(srv.u("/api/v1/status"), headers=srv.auth) as r:
+            s = await r.json()
+        assert s["well"] == "C4" and s["simulator"]["well"] == "C4"  # the derived map agrees with the simulator
+        # A map taught one column off (a plate seated one well over): the readout follows the map,
+        # and the simulator's truth beside it shows the disagreement.
+        smap = sim_stage_map(srv.station.profile)
+        save_stage_map(tmp_path, srv.station.profile, dataclasses.replace(
+            smap, offset_x_um=smap.offset_x_um + 9000.0, source="taught"))
+        async with srv.session.get(srv.u("/api/v1/status"), headers=srv.auth) as r:
+            s = await r.json()
+        assert s["well"] == "C3" and s["simulator"]["well"] == "C4"
+        async with srv.session.post(srv.u("/api/v1/stage/move"), headers=srv.auth,
+                                    json={"x_um": x + 4500.0, "y_um": y}) as r:
+            assert (await r.json())["well"] is None  # between wells
 
 
 async def test_soft_limits_and_bad_requests_are_refused_with_reasons(tmp_path):
