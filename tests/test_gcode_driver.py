@@ -8,6 +8,7 @@ import contextlib
 import dataclasses
 import math
 import os
+import select
 import threading
 import time
 import tty
@@ -457,3 +458,36 @@ async def test_a_second_owner_of_the_port_is_refused():
         with pytest.raises(MotionError, match="is in use by another program"):
             await second.connect()
         assert r.driver.describe()["connected"] is True
+
+
+async def test_a_board_speaking_another_language_is_pointed_at_the_dialect():
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    stop = threading.Event()
+
+    def answer_everything_wrongly() -> None:
+        deadline = time.monotonic() + 10.0  # bounded: the driver gives up long before
+        while not stop.is_set() and time.monotonic() < deadline:
+            ready, _, _ = select.select([master], [], [], 0.02)
+            if ready and os.read(master, 1024).endswith(b"\n"):
+                os.write(master, b"huh?\n")
+
+    board = threading.Thread(target=answer_everything_wrongly)
+    board.start()
+    try:
+        driver = GcodeController(
+            os.ttyname(slave), baud=115200, stage=stage(reply_timeout_s=0.3), focus=FOCUS,
+            illumination=LAMP, clock=ScaledClock(),
+        )
+        with pytest.raises(MotionError) as caught:
+            await driver.connect()
+        message = str(caught.value)
+        assert "unexpected reply 'huh?' to 'M114'" in message
+        assert "speaks the RepRap-style G-code dialect described in drivers/gcode/dialect.py" in message
+        assert os.path.exists(os.path.join(os.path.dirname(__file__), "..", "drivers", "gcode", "dialect.py"))
+        assert driver.describe()["connected"] is False
+    finally:
+        stop.set()
+        board.join()
+        os.close(master)
+        os.close(slave)

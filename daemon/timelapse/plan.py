@@ -33,7 +33,7 @@ from typing import TYPE_CHECKING, Any
 from drivers.options import ConfigError, load_section, option, section
 from daemon.vessels.geometry import Vessel, VesselError, Well, get_vessel, parse_wells
 from daemon.vessels.stage_map import StageMap, sim_vessel_name
-from drivers.kinematics import trapezoid_duration_s
+from drivers.gcode.dialect import trapezoid_duration_s
 
 if TYPE_CHECKING:
     from daemon.profile import Profile

@@ -2,44 +2,32 @@
 
 The real serial driver (:mod:`drivers.gcode`) talks to this emulator through pyserial
 exactly as it talks to a controller board on a USB serial port, so the simulated scope
-exercises the real driver, its timeouts and its recovery paths.
+exercises the real driver, its timeouts and its recovery paths. It speaks the
+RepRap-style dialect of :mod:`drivers.gcode.dialect` (commands, replies, report format
+and the planner's kinematics are described there); below is what is particular to this
+board.
 
-Dialect (RepRap style; millimetres and mm/min on the wire, one command per line)
--------------------------------------------------------------------------------
-``G90`` / ``G91``          absolute / relative coordinates for following moves
-``G0``/``G1 X Y Z F``      move (F: feed rate in mm/min, modal); ``ok`` once the move is
-                           queued (up to 16 moves are queued, then ``ok`` waits for room)
-``G28 [X] [Y] [Z]``        home the named axes (all when none are named): Z first, down to
-                           its switch, then X and Y; ``ok`` when homing has finished
-``G92 X Y Z``              declare the current position of the named axes
-``M114``                   ``X:12.500 Y:3.000 Z:1.500`` then ``ok``: where the motors are
-                           commanded to be (the end of the last queued move), as common
-                           firmware reports it; send ``M400`` first for a settled position
-``M400``                   ``ok`` once every queued move has finished
-``M106 P<ch> S<0-255>``    PWM output ``ch`` (0-7, default 0) to level S (default 255)
-``M107 P<ch>``             PWM output ``ch`` off
-``M115``                   one line describing the firmware, then ``ok``
-``M112``                   emergency stop, acted on as soon as it arrives (even while an
-                           ``M400`` or ``G28`` is waiting): motion is aborted where it is
-``M999``                   restart after a halt
-Every accepted line is answered ``ok``. A refused line is answered by one line
-``Error:<text>`` and no ``ok``. After ``M112`` the controller is halted and answers
-``!! <reason>`` to every line but ``M999``. On boot (and after a reset) it prints
-``start`` and one ``echo:`` line describing itself. Lines starting with ``;`` and text
-after ``;`` are comments; empty lines get no answer.
+The board
+---------
+The planner queues up to 16 moves (:data:`PLANNER_DEPTH`); a move arriving when it is
+full is acknowledged once a move has finished. ``G28`` homes Z first, down to its switch,
+then X and Y; the home switches sit at the profile's lower limits (``x_min_um``,
+``y_min_um``, ``z_min_um``). There are 8 PWM outputs (``M106``/``M107 P0``-``P7``).
+``M115`` answers :data:`FIRMWARE_LINE`; the banner is followed by one ``echo:`` line
+(:data:`INFO_LINE`). ``M112`` is acted on as the line arrives, even while an ``M400``
+or ``G28`` waits.
 
 Mechanics
 ---------
-Moves follow a trapezoidal speed profile along the straight line, limited per axis by
-the profile's speeds and accelerations (``[stage]`` for X and Y, ``[focus]`` for Z).
-All timing is read from the given clock, so an accelerated clock speeds moves up. The
-focus drive has true backlash (``[sim.motion] z_backlash_um``): the mechanics follow
-the motor with play, so after a move downwards the objective sits higher than the motor
-position by the backlash, and after a move upwards the two agree. The mechanical travel
-is wider than the profile's soft limits by ``travel_margin_um``; on z the objective hits
-the vessel ``z_crash_margin_um`` above ``z_safe_max_um``. A move whose end lies outside
-the travel is refused with an ``Error:`` line and no motion. The home switches sit at
-the profile's lower limits (``x_min_um``, ``y_min_um``, ``z_min_um``).
+Moves follow the dialect's trapezoidal speed profile along the straight line, limited
+per axis by the profile's speeds and accelerations (``[stage]`` for X and Y, ``[focus]``
+for Z). All timing is read from the given clock, so an accelerated clock speeds moves
+up. The focus drive has true backlash (``[sim.motion] z_backlash_um``): the mechanics
+follow the motor with play, so after a move downwards the objective sits higher than
+the motor position by the backlash, and after a move upwards the two agree. The
+mechanical travel is wider than the profile's soft limits by ``travel_margin_um``; on z
+the objective hits the vessel ``z_crash_margin_um`` above ``z_safe_max_um``. A move
+whose end lies outside the travel is refused with an ``Error:`` line and no motion.
 
 Faults (:meth:`GcodeEmulator.inject`)
 -------------------------------------
@@ -63,7 +51,6 @@ import dataclasses
 import logging
 import math
 import os
-import re
 import select
 import shutil
 import tempfile
@@ -74,19 +61,28 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Callable
 
 from drivers.base import Position
-from drivers.kinematics import trapezoid_duration_s, trapezoid_travel_um
+from drivers.gcode.dialect import (
+    REPRAP,
+    CommandSyntaxError,
+    feed_to_um_s,
+    format_mm,
+    mm_to_um,
+    path_limit,
+    trapezoid_duration_s,
+    trapezoid_travel_um,
+)
 
 if TYPE_CHECKING:
-    from drivers.sections import FocusSection, StageSection
     from drivers.clock import Clock
+    from drivers.gcode.settings import FocusSettings, StageSettings
     from drivers.sim.config import SimMotion
 
 log = logging.getLogger(__name__)
 
 PWM_OUTPUTS = 8
 PLANNER_DEPTH = 16
-BANNER = "start"
-INFO_LINE = "echo:phasewatch simulated motion controller 1.0; axes X Y Z; PWM outputs 0-7"
+BANNER = REPRAP.banner
+INFO_LINE = REPRAP.info_reply("phasewatch simulated motion controller 1.0; axes X Y Z; PWM outputs 0-7")
 FIRMWARE_LINE = "firmware: phasewatch-sim motion 1.0; axes X Y Z; PWM outputs 0-7; planner 16 moves"
 FAULTS = ("reset", "disconnect", "garble", "drop_reply", "stall")
 
@@ -95,7 +91,6 @@ FAULTS = ("reset", "disconnect", "garble", "drop_reply", "stall")
 _POLL_S = 0.002
 _STALL_FRACTION = 0.5
 _AXES = ("X", "Y", "Z")
-_WORD = re.compile(r"\s*([A-Z])([-+]?(?:\d+(?:\.\d*)?|\.\d+))?")
 
 Vec = tuple[float, float, float]
 
@@ -152,8 +147,8 @@ class GcodeEmulator:
         self,
         *,
         clock: Clock,
-        stage: StageSection,
-        focus: FocusSection,
+        stage: StageSettings,
+        focus: FocusSettings,
         motion: SimMotion,
         start: Position | None = None,
         link_dir: str | Path | None = None,
@@ -404,66 +399,38 @@ class GcodeEmulator:
                 if not text:
                     continue
                 self.received.append((self._clock.now(), text))
-                if self._is_emergency_stop(text):
+                if REPRAP.is_emergency_stop(text):
                     self._emergency_stop()
                 else:
                     self._pending.append(text)
-
-    @staticmethod
-    def _is_emergency_stop(text: str) -> bool:
-        return re.fullmatch(r"M0*112(\s.*|;.*)?", text.strip().upper()) is not None
 
     def _execute(self, text: str) -> None:
         with self._lock:
             epoch = self._epoch
             if self._halted is not None:
-                if text.upper().startswith("M999"):
+                if text.upper().startswith(REPRAP.restart_command):
                     self._halted = None
-                    self._reply("ok")
+                    self._reply(REPRAP.ok)
                 else:
-                    self._reply(f"!! {self._halted}")
+                    self._reply(REPRAP.halt_reply(self._halted))
                 return
         try:
-            parsed = self._parse(text)
-        except _Refused as exc:
+            parsed = REPRAP.parse_command(text)
+        except CommandSyntaxError as exc:
             with self._lock:
-                self._reply(f"Error:{exc}")
+                self._reply(REPRAP.error_reply(str(exc)))
             return
         if parsed is None:
             return
-        command, params = parsed
-        handler = self._handlers().get(command)
+        handler = self._handlers().get(parsed.word)
         try:
             if handler is None:
-                raise _Refused(f"unknown command '{command}'")
-            handler(params, epoch)
+                raise _Refused(f"unknown command '{parsed.word}'")
+            handler(parsed.params, epoch)
         except _Refused as exc:
             with self._lock:
                 if self._epoch == epoch:
-                    self._reply(f"Error:{exc}")
-
-    @staticmethod
-    def _parse(text: str) -> tuple[str, dict[str, float | None]] | None:
-        body = text.split(";", 1)[0].strip().upper()
-        if not body:
-            return None
-        words: list[tuple[str, str | None]] = []
-        pos = 0
-        while pos < len(body):
-            m = _WORD.match(body, pos)
-            if m is None or m.end() == pos:
-                raise _Refused(f"cannot read '{text}'")
-            words.append((m.group(1), m.group(2)))
-            pos = m.end()
-        (letter, number), *rest = words
-        if letter not in "GM" or number is None or not number.isdigit():
-            raise _Refused(f"cannot read '{text}': a line starts with a G or M command")
-        params: dict[str, float | None] = {}
-        for key, value in rest:
-            if key in params:
-                raise _Refused(f"'{key}' given twice in '{text}'")
-            params[key] = float(value) if value is not None else None
-        return f"{letter}{int(number)}", params
+                    self._reply(REPRAP.error_reply(str(exc)))
 
     def _handlers(self) -> dict[str, Callable[[dict[str, float | None], int], None]]:
         return {
@@ -503,19 +470,19 @@ class GcodeEmulator:
             if self._epoch != epoch:
                 return
             if feed is not None:
-                self._feed_um_s = feed * 1000.0 / 60.0
+                self._feed_um_s = feed_to_um_s(feed)
             begin = self._queue_end()
             logical = [m - o for m, o in zip(begin, self._offset)]
             for i, axis in enumerate(_AXES):
                 value = params.get(axis)
                 if value is not None:
-                    logical[i] = value * 1000.0 if self._absolute else logical[i] + value * 1000.0
+                    logical[i] = mm_to_um(value) if self._absolute else logical[i] + mm_to_um(value)
             target = tuple(v + o for v, o in zip(logical, self._offset))
             for axis, value, lo, hi, log_um in zip(_AXES, target, self._travel_lo, self._travel_hi, logical):
                 if not lo - 1e-6 <= value <= hi + 1e-6:
-                    raise _Refused(f"{axis}{log_um / 1000.0:.4f} lies outside the travel of the mechanics; not moved")
+                    raise _Refused(f"{axis}{format_mm(log_um)} lies outside the travel of the mechanics; not moved")
             self._queue_move(begin, target, self._feed_um_s)  # type: ignore[arg-type]
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_home(self, params: dict[str, float | None], epoch: int) -> None:
         self._only(params, "XYZ", "G28")
@@ -544,17 +511,17 @@ class GcodeEmulator:
             if axes[2]:
                 self._mech_z_um = self._motor[2]
             self._offset = tuple(0.0 if homed else o for homed, o in zip(axes, self._offset))  # type: ignore[assignment]
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_absolute(self, params: dict[str, float | None], epoch: int) -> None:
         with self._lock:
             self._absolute = True
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_relative(self, params: dict[str, float | None], epoch: int) -> None:
         with self._lock:
             self._absolute = False
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_set_position(self, params: dict[str, float | None], epoch: int) -> None:
         self._only(params, "XYZ", "G92")
@@ -569,9 +536,9 @@ class GcodeEmulator:
             for i, axis in enumerate(_AXES):
                 value = params.get(axis)
                 if value is not None:
-                    offset[i] = self._motor[i] - value * 1000.0
+                    offset[i] = self._motor[i] - mm_to_um(value)
             self._offset = tuple(offset)  # type: ignore[assignment]
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _pwm_channel(self, params: dict[str, float | None], command: str) -> int:
         p = params.get("P", 0.0)
@@ -587,35 +554,35 @@ class GcodeEmulator:
             raise _Refused("M106 S must be 0-255")
         with self._lock:
             self._pwm[channel] = s / 255.0
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_pwm_off(self, params: dict[str, float | None], epoch: int) -> None:
         self._only(params, "P", "M107")
         channel = self._pwm_channel(params, "M107")
         with self._lock:
             self._pwm[channel] = 0.0
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     def _cmd_report(self, params: dict[str, float | None], epoch: int) -> None:
         with self._lock:
             end = self._queue_end()
-            x, y, z = ((m - o) / 1000.0 for m, o in zip(end, self._offset))
-            self._reply(f"X:{x:.3f} Y:{y:.3f} Z:{z:.3f}", "ok")
+            x, y, z = (m - o for m, o in zip(end, self._offset))
+            self._reply(REPRAP.report_line(x, y, z), REPRAP.ok)
 
     def _cmd_firmware(self, params: dict[str, float | None], epoch: int) -> None:
         with self._lock:
-            self._reply(FIRMWARE_LINE, "ok")
+            self._reply(FIRMWARE_LINE, REPRAP.ok)
 
     def _cmd_finish(self, params: dict[str, float | None], epoch: int) -> None:
         if not self._wait_for(lambda: not self._queue, epoch):
             return
         with self._lock:
             if self._epoch == epoch:
-                self._reply("ok")
+                self._reply(REPRAP.ok)
 
     def _cmd_restart(self, params: dict[str, float | None], epoch: int) -> None:
         with self._lock:
-            self._reply("ok")
+            self._reply(REPRAP.ok)
 
     # ------------------------------------------------------------- motion
 
@@ -624,15 +591,10 @@ class GcodeEmulator:
 
     def _queue_move(self, begin: Vec, target: Vec, feed_um_s: float, *, now: float | None = None) -> None:
         delta = [b - a for a, b in zip(begin, target)]
-        length = math.hypot(*delta)
-        if length == 0.0:
+        if math.hypot(*delta) == 0.0:
             return
-        # Limit the path speed and acceleration so that no axis exceeds its own.
-        speed, accel = feed_um_s, math.inf
-        for d, v_max, a_max in zip(delta, self._speed_max, self._accel_max):
-            if d != 0.0:
-                speed = min(speed, v_max * length / abs(d))
-                accel = min(accel, a_max * length / abs(d))
+        speed = min(feed_um_s, path_limit(delta, self._speed_max))
+        accel = path_limit(delta, self._accel_max)
         t_now = self._clock.now() if now is None else now
         t0 = max(t_now, self._queue[-1].end_s) if self._queue else t_now
         seg = _Segment(begin, target, speed, accel, t0, stalled=self._stall_next)
@@ -692,7 +654,7 @@ class GcodeEmulator:
         self._interrupt()
         self._epoch += 1
         self._halted = "emergency stop (M112): motion aborted; send M999 to restart"
-        self._reply(f"!! {self._halted}")
+        self._reply(REPRAP.halt_reply(self._halted))
 
     def _reboot(self) -> None:
         self._interrupt()
