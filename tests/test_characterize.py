@@ -116,7 +116,7 @@ async def test_simulated_sensor_follows_the_photon_transfer_relation() -> None:
 
 @pytest.mark.parametrize("gain_db", [0.0, 24.0])
 async def test_characterize_on_the_simulated_scope_recovers_gain_and_read_noise(tmp_path: Path, gain_db: float) -> None:
-    # Targets (issue 4): system gain within 5 %, read noise within 10 % of the simulator's.
+    # Targets (docs/TARGETS.md): system gain within 5 %, read noise within 10 % of the simulator's.
     profile = sim_profile(320, 240)
     report = await characterize(profile, out=tmp_path, gain_db=gain_db, steps=20, spatial_frames=8, sim_speed=10000.0)
     truth = report["simulator"]

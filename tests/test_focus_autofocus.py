@@ -32,8 +32,8 @@ from tests.helpers import sim_profile, sim_scope
 # Objectives of budget phase-contrast scopes run from about 4x to 60x (common practice);
 # NAs are the usual ones for 4x/0.10, 10x/0.25 and 20x/0.40 phase objectives (common practice).
 OBJECTIVES = {"4x": (4.0, 0.10, 600.0), "10x": (10.0, 0.25, 600.0), "20x": (20.0, 0.40, 3000.0)}
-# Accuracy target |error| <= d/4 (d = depth of field): the product brief's Targets table
-# (../shared/PRODUCT.md), the same as the benchmark's.
+# Accuracy target |error| <= d/4 (d = depth of field): docs/TARGETS.md, the same as the
+# benchmark's.
 WELL = "C4"
 SPEED = 200.0  # simulated clock speed: fast moves, yet no focus drift within one search
 
@@ -320,7 +320,7 @@ async def test_sparse_and_empty_fields_never_report_a_false_focus() -> None:
             outcomes.append((well, cover, result.found, result.z_um - truth, result.message))
             assert result.true_z_um is not None
             if result.found:
-                # Accuracy target |error| <= d/4: the product brief's Targets table.
+                # Accuracy target |error| <= d/4: docs/TARGETS.md.
                 assert abs(result.z_um - result.true_z_um) <= d / 4, outcomes[-1]
                 assert result.confidence >= MIN_CONFIDENCE
             else:

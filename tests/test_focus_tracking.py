@@ -75,7 +75,7 @@ async def test_tracking_follows_drift_with_few_frames() -> None:
     revisits = [r for tp, _, r in results if tp > 0]
     assert all("tracked" in r.message for r in revisits)
     frames = [r.frames for r in revisits]
-    # Tracking target: median <= 6 frames (product brief, Targets); 8 at most here.
+    # docs/TARGETS.md asks median <= 4 frames and at most 8; this holds the search to 6 and 8.
     assert statistics.median(frames) <= 6 and max(frames) <= 8, frames
     # The first position was a cold search; later first visits start from the surface.
     firsts = [r for tp, _, r in results if tp == 0]

@@ -14,9 +14,9 @@ from daemon.illumination.correction import Corrector, correct
 from tests.illumination_helpers import shading
 
 
-def test_matches_the_formula_of_the_brief() -> None:
-    # The formula (raw − dark) / (flat − dark) × mean(flat − dark): PRODUCT.md, section
-    # Illumination correction; standard flat-fielding (common practice). Reference in float64.
+def test_matches_the_flat_fielding_formula() -> None:
+    # The formula (raw − dark) / (flat − dark) × mean(flat − dark): docs/TARGETS.md;
+    # standard flat-fielding (common practice). Reference in float64.
     rng = np.random.default_rng(3)
     dark = rng.uniform(5, 15, (48, 64))
     flat = dark + rng.uniform(80, 200, (48, 64))

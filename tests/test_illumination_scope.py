@@ -18,7 +18,7 @@ HARSH = {"sim.illumination.vignetting": 0.6, "sim.illumination.led_offset_x": 0.
 
 @pytest.mark.parametrize("changes, before_at_least", [({}, 0.10), (HARSH, 0.20)])
 async def test_corrected_blank_field_is_flat_to_one_percent(tmp_path: Path, changes: dict, before_at_least: float) -> None:
-    # Target (issue 4): residual non-uniformity of a corrected blank field (PRNU-style,
+    # Target (docs/TARGETS.md): residual non-uniformity of a corrected blank field (PRNU-style,
     # temporal noise removed, after EMVA 1288's spatial-variance definition) ≤ 1 %.
     profile = sim_profile(320, 240, **changes)
     store = CalibrationStore(tmp_path / "calibration")

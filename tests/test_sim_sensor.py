@@ -121,7 +121,7 @@ def test_saturation_clips_at_full_scale(world: SimWorld, blank: tuple[float, flo
 
 
 def test_default_exposure_puts_field_centre_near_mid_scale(world: SimWorld, blank: tuple[float, float]) -> None:
-    # Project target (the brief): a 20 ms exposure at full lamp puts the field centre at
+    # Project target (docs/TARGETS.md): a 20 ms exposure at full lamp puts the field centre at
     # 40-60 % of an 8-bit camera's full scale, blank or with cells.
     h, w = world.shape
     for xy in (blank, world.well_centre_um("B3")):

@@ -47,7 +47,7 @@ class Corrector:
     """Precomputed per-pixel gain and offset: ``apply(raw) = raw·gain − offset``.
 
     ``gain = mean(flat − dark) / (flat − dark)`` and ``offset = dark·gain``, which is the
-    brief's formula rearranged so that a frame costs two passes over memory.
+    flat-fielding formula of docs/TARGETS.md rearranged so that a frame costs two passes over memory.
     """
 
     gain: np.ndarray

@@ -41,15 +41,15 @@ if TYPE_CHECKING:
 AUTOFOCUS_POLICIES = ("track", "first", "off")
 SAVE_CHOICES = ("corrected", "raw", "both")
 
-# Frames per autofocus run: the product's targets (PRODUCT.md, Targets: cold autofocus
-# <= 15 frames, tracking <= 6 frames), used here as the budget an estimate plans for.
+# Frames per autofocus run: the targets in docs/TARGETS.md (cold autofocus <= 15 frames;
+# tracking <= 6, a margin over its median of 4), used as the budget an estimate plans for.
 COLD_AUTOFOCUS_FRAMES = 15
 TRACK_AUTOFOCUS_FRAMES = 6
-# Range a cold search covers (+-150 um start error, PRODUCT.md Targets) and the window a
+# Range a cold search covers (+-150 um start error, docs/TARGETS.md) and the window a
 # tracking search covers (drift up to 20 um each way).
 COLD_SEARCH_RANGE_UM = 300.0
 TRACK_SEARCH_RANGE_UM = 40.0
-# Software time per saved frame: the target for correction, metrics, TIFF write and index.
+# Software time per saved frame: the target (docs/TARGETS.md) for correction, metrics, TIFF write and index.
 SOFTWARE_S_PER_SAVED_FRAME = 0.030
 # Focus score on an autofocus frame (a metric on a full frame, no write).
 SOFTWARE_S_PER_FOCUS_FRAME = 0.008

@@ -1,6 +1,6 @@
 """The station: one scope, its live view, its time-lapse, and who may use the hardware when.
 
-Rules (PRODUCT.md, "One hardware owner"):
+Rules ("One hardware owner", docs/TARGETS.md):
 
 * live view exposes only while the scope is free, so a time point pre-empts it;
 * manual control (moves, autofocus) is refused while a time-lapse runs, with the reason

@@ -1,4 +1,4 @@
-"""Illumination correction and camera characterisation: the targets of issue 4.
+"""Illumination correction and camera characterisation: the targets of docs/TARGETS.md.
 
 - correction of a 1920×1080 frame ≤ 5 ms (the hot path, ``Corrector.apply``), with a
   frame copy timed in the same run for scale;

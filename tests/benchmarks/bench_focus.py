@@ -2,7 +2,7 @@
 
     python -m tests.benchmarks.run focus
 
-Targets (docs: ../shared/PRODUCT.md, Targets): each metric on a 1920x1080 8-bit frame
+Targets (docs/TARGETS.md): each metric on a 1920x1080 8-bit frame
 within 25x the time of one copy of that frame (same run); cold autofocus on the simulated
 10x/0.25 scope with the start off by up to ±150 um, 50 seeded trials: median <= 15 frames,
 95th-percentile |error| <= d/4 (d = depth of field), no success reported out of focus;

@@ -1,6 +1,6 @@
 """Resident memory of the daemon serving a viewer while a time-lapse runs.
 
-The product's target (PRODUCT.md, Targets): at most 200 MB resident, serving plus time-lapse.
+The product's target (docs/TARGETS.md): at most 200 MB resident, serving plus time-lapse.
 The daemon runs as its own process; a time-lapse of three wells is started over the API,
 one client watches the MJPEG stream at a reduced size, and the resident set size (psutil)
 is sampled twice a second.

@@ -2,7 +2,7 @@
 
     python -m tests.benchmarks.run render
 
-Target (this task's brief): a frame <= 200 ms on the 2-core test machine, cold (a new
+Target (docs/TARGETS.md): a frame <= 200 ms on the 2-core test machine, cold (a new
 field: culture, rasterisation, object FFT, imaging, sensor). Also measured: a refocus at the
 same field (what each frame of a focus sweep costs), a repeat at the same z (live view),
 and one numpy FFT of a 1280x960 frame in the same run, for the ratio.

@@ -1,6 +1,6 @@
 """Live stream from a replay camera: 1280x720 to 4 concurrent MJPEG clients.
 
-The product's target (PRODUCT.md, Targets): at least 15 fps at 1280x720 to 4 browsers from a
+The product's target (docs/TARGETS.md): at least 15 fps at 1280x720 to 4 browsers from a
 replay camera, with the daemon using at most one core. The daemon runs as its own process
 (``phasewatch serve``, replay camera at 30 fps, simulated stage); four clients in this process
 read ``/api/v1/stream.mjpeg`` at full size for a fixed time. Reported: the slowest client's

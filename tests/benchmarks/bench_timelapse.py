@@ -2,7 +2,7 @@
 
 1. Software time per position at 1080p on a time point's critical path: illumination
    correction, focus score, OME-TIFF encode + write + fsync + rename, index row
-   (target <= 30 ms, PRODUCT.md Targets). Measured through the scheduler's own
+   (target <= 30 ms, docs/TARGETS.md). Measured through the scheduler's own
    :class:`FrameProcessor` on a temporary data folder.
 2. Confluence of the analysed plane at 1080p: reported, not targeted; it runs in the
    background while the scope moves to the next position.
