@@ -20,14 +20,22 @@ from daemon.storage.index import DuplicateFrame, Index, open_index
 from daemon.storage.ome import FrameMeta, encode_frame, read_frame
 from daemon.storage.reconcile import reconcile
 from daemon.storage.space import MB, SpaceGuard
+from daemon.timelapse.plan import Plan, ZStack
 from tests.helpers import sim_profile
 
 PIXEL_UM = sim_profile().optics.pixel_size_um  # 3.75 um camera pixel / 10x = 0.375 um
 
 
 def _timelapse(index: Index, name: str = "LR-0412 growth") -> int:
+    # Recorded as the scheduler records one: the plan and its positions (site B3-2 has a z-stack).
+    plan = Plan(
+        name=name, vessel="96-well", wells=["B3"], sites_per_well=2, interval_s=600.0, count=4, autofocus="track",
+        z_stack=ZStack(3, 5.0), exposure_ms=20.0, gain_db=3.0, correction=False, save="raw",
+    )
+    positions = [{"key": f"B3-{s}", "well": "B3", "site": s, "x_um": 23380.0, "y_um": 20240.0} for s in (1, 2)]
     return index.create_timelapse(
-        name=name, plan={"name": name}, profile_path="hw_profiles/sim.toml", profile_name="sim",
+        name=name, plan={"plan": plan.to_dict(), "positions": positions}, profile_path="hw_profiles/sim.toml",
+        profile_name="sim",
         created_s=1.77e9, t0_s=1.77e9, interval_s=600.0, count=4, n_positions=2, reserve_mb=1.0,
     )
 

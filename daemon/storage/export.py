@@ -1,4 +1,4 @@
-"""Exports of a time-lapse: CSV of per-frame metrics, and one multi-page OME-TIFF per position."""
+"""Exports of a time-lapse: CSV of per-frame and per-well metrics, and one multi-page OME-TIFF per position."""
 
 from __future__ import annotations
 
@@ -34,8 +34,9 @@ def _atomic_csv(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> N
 
 
 def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
-    """Write ``frames.csv`` (one row per frame), ``time-points.csv`` (incl. missed ones) and
-    ``growth.csv`` (one growth fit per well: doubling time, its uncertainty, fit quality)."""
+    """Write ``frames.csv`` (one row per frame), ``time-points.csv`` (incl. missed ones),
+    ``wells.csv`` (one row per well and time point: confluence of the sites used, focus)
+    and ``growth.csv`` (one growth fit per well: doubling time, its uncertainty, fit quality)."""
     tl = index.require_timelapse(tl_id)
     make_dirs(out_dir)
     t0 = tl["t0_s"]
@@ -66,11 +67,12 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     points_csv = out_dir / "time-points.csv"
     _atomic_csv(frames_csv, FRAME_COLUMNS, frame_rows)
     _atomic_csv(points_csv, TIME_POINT_COLUMNS, tp_rows)
-    from daemon.culture.growth import GROWTH_COLUMNS, fit_plate, growth_rows
-    from daemon.culture.series import analysed_frames, well_series
+    from daemon.culture.growth import GROWTH_COLUMNS, growth_rows
+    from daemon.culture.readings import WELL_COLUMNS, growth_fits, timelapse_readings, well_rows
 
-    fits = fit_plate(well_series(analysed_frames(index.frames(tl_id))))
-    _atomic_csv(out_dir / "growth.csv", GROWTH_COLUMNS, growth_rows(fits))
+    readings = timelapse_readings(index, tl_id)
+    _atomic_csv(out_dir / "wells.csv", WELL_COLUMNS, well_rows(readings))
+    _atomic_csv(out_dir / "growth.csv", GROWTH_COLUMNS, growth_rows(growth_fits(readings)))
     return frames_csv, points_csv
 
 

@@ -107,6 +107,11 @@ class Plan:
     def frames_per_position(self) -> int:
         return self.z_stack.count if self.z_stack else 1
 
+    @property
+    def analysis_plane(self) -> int:
+        """Index of the plane analysed for confluence: the focal plane (or the one just above it)."""
+        return (self.z_stack.count // 2) if self.z_stack else 0
+
     def get_vessel(self) -> Vessel:
         return get_vessel(self.vessel, Path(self.vessel_file) if self.vessel_file else None)
 

@@ -28,7 +28,6 @@ import dataclasses
 import json
 import logging
 import sqlite3
-import statistics
 from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -95,11 +94,6 @@ def z_planes_um(focus_z_um: float, plan: Plan) -> list[float]:
     return [focus_z_um + (i - (n - 1) / 2.0) * step for i in range(n)]
 
 
-def analysis_plane(plan: Plan) -> int:
-    """Index of the plane analysed for confluence: the focal plane (or the one just above it)."""
-    return (plan.z_stack.count // 2) if plan.z_stack else 0
-
-
 class Scheduler:
     """Runs one time-lapse (a row of the index) on ``scope``; create with :meth:`create` or :meth:`resume`."""
 
@@ -142,7 +136,7 @@ class Scheduler:
         cam = self.profile.camera
         self.exposure_ms = self.plan.exposure_ms if self.plan.exposure_ms is not None else cam.exposure_ms
         self.gain_db = self.plan.gain_db if self.plan.gain_db is not None else cam.gain_db
-        self.analysis_plane = analysis_plane(self.plan)
+        self.analysis_plane = self.plan.analysis_plane
         self.processor: FrameProcessor | None = None
         self.software_s: list[float] = []  # critical-path software time of each position saved
         self._confluence: Callable[..., Any] | None = None
@@ -631,27 +625,13 @@ class Scheduler:
         await self._analysis.join()
 
     async def _update_culture_watch(self, k: int) -> None:
-        """Feed the well-level confluence of time point ``k`` to the culture watch."""
-        rows = await asyncio.to_thread(self.index.frames, self.id, k)
-        # One reading per site: its analysed plane (raw and corrected frames carry the same figures).
-        per_site: dict[str, dict[str, Any]] = {}
-        for f in rows:
-            best = per_site.get(f["key"])
-            if best is None or (best["confluence"] is None and f["confluence"] is not None):
-                per_site[f["key"]] = f
-        per_well: dict[str, list[dict[str, Any]]] = {}
-        for f in per_site.values():
-            if f["confluence"] is not None or f["focus_found"] is not None:
-                per_well.setdefault(f["well"], []).append(f)
-        for well, frames in per_well.items():
-            attempted = [f for f in frames if f["focus_found"] is not None]
-            focus_ok = not attempted or any(f["focus_found"] for f in attempted)
-            usable = [f["confluence"] for f in frames if f["confluence"] is not None and f["focus_found"] != 0]
-            value = statistics.fmean(usable) if usable else None
-            t_s = min(f["t_s"] for f in frames)
-            for alert in self.watch.update(well, t_s, value, focus_ok):
-                level = "info" if alert.kind == "confluence_reached" else "warning"
-                await self._alert(level, alert.kind, alert.message)
+        """Feed the well readings of time point ``k`` to the culture watch."""
+        from daemon.culture.readings import timelapse_readings
+
+        readings = await asyncio.to_thread(timelapse_readings, self.index, self.id, tp=k)
+        for alert in self.watch.feed(readings):
+            level = "info" if alert.kind == "confluence_reached" else "warning"
+            await self._alert(level, alert.kind, alert.message)
 
     async def _save_resume_state(self, *, watch: bool = False) -> None:
         parts: dict[str, Any] = {"tracker": self.tracker.to_dict(), "first_focus": self.first_focus}
