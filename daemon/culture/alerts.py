@@ -14,6 +14,8 @@ from collections import deque
 from collections.abc import Iterable
 from typing import TYPE_CHECKING, Any
 
+from daemon.states import FocusState
+
 if TYPE_CHECKING:
     from daemon.culture.readings import WellReading
 
@@ -164,7 +166,7 @@ class CultureWatch:
         alerts: list[Alert] = []
         for r in readings:
             if r.informative:
-                alerts.extend(self.update(r.well, r.t_s, r.confluence, r.focus != "failed"))
+                alerts.extend(self.update(r.well, r.t_s, r.confluence, r.focus != FocusState.FAILED))
         return alerts
 
     def _check_threshold(self, well: str, t_s: float, c: float, rules: WatchRules, st: _WellState) -> list[Alert]:

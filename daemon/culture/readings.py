@@ -21,15 +21,14 @@ import dataclasses
 import json
 import statistics
 from collections.abc import Iterable, Mapping, Sequence
-from typing import TYPE_CHECKING, Any, Literal
+from typing import TYPE_CHECKING, Any
+
+from daemon.states import FocusState, FrameState
 
 if TYPE_CHECKING:
     from daemon.culture.growth import GrowthFit
     from daemon.storage.index import Index
 
-# How focus went for a well at one time point: a search found the plane at one site at
-# least, every search failed, or no site was searched (focus off, or the plane remembered).
-FocusState = Literal["found", "failed", "not_searched"]
 S_PER_H = 3600.0
 
 
@@ -100,7 +99,7 @@ def site_readings(frames: Iterable[Mapping[str, Any]], analysis_plane: int) -> l
         return (f["z_index"] == analysis_plane, f["confluence"] is not None, f["kind"] == "corrected")
 
     for f in frames:
-        if f["status"] != "ok":
+        if f["status"] != FrameState.OK:
             continue
         k = (f["key"], f["tp"])
         cur = chosen.get(k)
@@ -120,8 +119,8 @@ def site_readings(frames: Iterable[Mapping[str, Any]], analysis_plane: int) -> l
 def focus_state(sites: Sequence[SiteReading]) -> FocusState:
     searched = [s.focus_found for s in sites if s.focus_found is not None]
     if not searched:
-        return "not_searched"
-    return "found" if any(searched) else "failed"
+        return FocusState.NOT_SEARCHED
+    return FocusState.FOUND if any(searched) else FocusState.FAILED
 
 
 def well_readings_of(

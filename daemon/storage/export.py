@@ -11,6 +11,7 @@ from typing import Any
 import numpy as np
 import tifffile
 
+from daemon.states import FrameState
 from daemon.storage.frames import atomic_open, make_dirs
 from daemon.storage.index import Index
 from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
@@ -105,7 +106,7 @@ def export_stacks(
     counted; the planes' DeltaT keeps the true acquisition times.
     """
     tl = index.require_timelapse(tl_id)
-    frames = [f for f in index.frames(tl_id) if f["status"] == "ok"]
+    frames = [f for f in index.frames(tl_id) if f["status"] == FrameState.OK]
     if kind is None:
         kind = "corrected" if any(f["kind"] == "corrected" for f in frames) else "raw"
     by_position: dict[str, dict[int, dict[int, dict[str, Any]]]] = {}

@@ -21,6 +21,7 @@ import zlib
 from collections.abc import Callable
 from pathlib import Path
 
+from daemon.states import FrameState
 from daemon.storage.frames import PARTIAL_SUFFIX, frame_relpath, make_dirs
 from daemon.storage.index import Index
 from daemon.storage.ome import NotOurFrame, read_frame
@@ -108,22 +109,22 @@ def reconcile(
         indexed.add(rel)
         report.verified += 1
         path = data_dir / rel
-        status = "ok"
+        status = FrameState.OK
         if rel not in on_disk:
-            status = "missing"
+            status = FrameState.MISSING
         elif path.stat().st_size != row["bytes"]:
-            status = "damaged"
+            status = FrameState.DAMAGED
         elif verify == "all" or (verify == "recent" and row["tp"] == latest_tp[row["timelapse_id"]]):
             report.checksummed += 1
             if _crc_of_file(path) != row["crc32"]:
-                status = "damaged"
-        if status == "missing":
+                status = FrameState.DAMAGED
+        if status == FrameState.MISSING:
             report.missing.append(rel)
-        elif status == "damaged":
+        elif status == FrameState.DAMAGED:
             report.damaged.append(rel)
         if status != row["status"]:
             index.set_frame_status(row["id"], status)
-            if status != "ok":
+            if status != FrameState.OK:
                 index.add_alert(
                     row["timelapse_id"], t_s=now(), level="error", kind="storage",
                     message=f"indexed frame {rel} is {status}",

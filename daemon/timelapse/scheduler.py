@@ -38,7 +38,16 @@ from daemon.storage.frames import FrameStore
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB, SpaceGuard, frame_bytes_estimate
 from daemon.timelapse import timing
-from daemon.timelapse.events import Event
+from daemon import events as ev
+from daemon.events import Event
+from daemon.states import (
+    STOP_REQUESTS,
+    UNFINISHED_STATES,
+    PositionState,
+    Request,
+    TimelapseState,
+    TimePointState,
+)
 from daemon.timelapse.plan import Plan, PlannedPosition
 from daemon.timelapse.processing import FrameProcessor, PositionFrames, SavedPosition
 from daemon.timelapse.recovery import recover
@@ -58,7 +67,6 @@ ANALYSIS_BACKLOG = 8
 MISSED_DOWN = "the daemon was not running"
 MISSED_OVERRUN = "the previous time point ran into this one's slot"
 MISSED_PAUSED = "the time-lapse was paused"
-STOP_REQUESTS = ("pause", "abort", "shutdown")
 # Cold focus searches per time point while no plane is known yet: enough to get past an
 # empty well or a bubble, few enough that a dead lamp does not cost a search at every
 # position.
@@ -123,7 +131,7 @@ class Scheduler:
         self.t0_s: float = row["t0_s"]
         self.interval_s: float = row["interval_s"]
         self.count: int = row["count"]
-        self.state: str = row["state"]
+        self.state = TimelapseState(row["state"])
         self.on_event = on_event
         self.store = FrameStore(data_dir, index)
         self.guard = space_guard or SpaceGuard(data_dir, row["reserve_mb"])
@@ -141,7 +149,7 @@ class Scheduler:
         self.software_s: list[float] = []  # critical-path software time of each position saved
         self._confluence: Callable[..., Any] | None = None
         self._analysis: asyncio.Queue[_AnalysisJob] = asyncio.Queue(maxsize=ANALYSIS_BACKLOG)
-        self._request: str | None = None
+        self._request: str | None = None  # a Request, or what another process posted
         self._shutdown = False
         self._wake = asyncio.Event()
         self._miss_reason = MISSED_DOWN if resumed else MISSED_OVERRUN
@@ -207,30 +215,30 @@ class Scheduler:
     def _progress_from_index(self) -> tuple[int, int | None]:
         """(first time point not yet recorded, time point left running by a crash or pause)."""
         points = self.index.time_points(self.id)
-        open_k = next((p["tp"] for p in points if p["status"] == "running"), None)
+        open_k = next((p["tp"] for p in points if p["status"] == TimePointState.RUNNING), None)
         next_k = max((p["tp"] for p in points), default=-1) + 1
         return next_k, open_k
 
     # -- control -----------------------------------------------------------------------
 
     def pause(self) -> None:
-        self._ask("pause")
+        self._ask(Request.PAUSE)
 
     def resume_running(self) -> None:
-        self._ask("resume")
+        self._ask(Request.RESUME)
 
     def abort(self) -> None:
-        self._ask("abort")
+        self._ask(Request.ABORT)
 
     def shutdown(self) -> None:
         """Stop in this process but leave the time-lapse unfinished, to be resumed later."""
-        self._ask("shutdown")
+        self._ask(Request.SHUTDOWN)
 
     def set_miss_reason(self, reason: str) -> None:
         """Why time points due before the next run were not run (recorded with them)."""
         self._miss_reason = reason
 
-    def _ask(self, request: str) -> None:
+    def _ask(self, request: Request) -> None:
         self._request = request
         self._wake.set()
 
@@ -238,15 +246,15 @@ class Scheduler:
         external = await asyncio.to_thread(self.index.take_request, self.id)
         request = self._request or external
         self._request = None
-        if request == "pause" and self.state == "running":
-            await self._set_state("paused", "paused by request")
-        elif request == "resume" and self.state == "paused":
+        if request == Request.PAUSE and self.state == TimelapseState.RUNNING:
+            await self._set_state(TimelapseState.PAUSED, "paused by request")
+        elif request == Request.RESUME and self.state == TimelapseState.PAUSED:
             self._miss_reason = MISSED_PAUSED
-            await self._set_state("running")
-        elif request == "abort":
+            await self._set_state(TimelapseState.RUNNING)
+        elif request == Request.ABORT:
             await self._close_open_time_point("aborted")
-            await self._set_state("aborted", "aborted by request", finished=True)
-        elif request == "shutdown":
+            await self._set_state(TimelapseState.ABORTED, "aborted by request", finished=True)
+        elif request == Request.SHUTDOWN:
             self._shutdown = True
 
     async def _interrupted(self) -> bool:
@@ -261,9 +269,9 @@ class Scheduler:
 
     # -- events ------------------------------------------------------------------------
 
-    def _emit(self, event_type: str, /, **fields: Any) -> None:
+    def _publish(self, event: Event) -> None:
         if self.on_event is not None:
-            self.on_event({"type": event_type, "timelapse_id": self.id, **fields})
+            self.on_event(event)
 
     async def _alert(self, level: str, kind: str, message: str) -> None:
         now = self.scope.clock.now()
@@ -274,28 +282,28 @@ class Scheduler:
         except (OSError, sqlite3.DatabaseError):
             # The index itself may be what ran out of space: the alert still goes out.
             alert = {"timelapse_id": self.id, "t_s": now, "level": level, "kind": kind, "message": message}
-        self._emit("alert", **{k: v for k, v in alert.items() if k != "timelapse_id"})
+        self._publish(ev.AlertEvent(type="alert", **alert))
 
-    async def _set_state(self, state: str, reason: str | None = None, *, finished: bool = False) -> None:
+    async def _set_state(self, state: TimelapseState, reason: str | None = None, *, finished: bool = False) -> None:
         self.state = state
         finished_s = self.scope.clock.now() if finished else None
         with contextlib.suppress(OSError, sqlite3.DatabaseError):
             await asyncio.to_thread(self.index.set_state, self.id, state, reason=reason, finished_s=finished_s)
-        self._emit("state", state=state, reason=reason)
+        self._publish(ev.StateEvent(type="state", timelapse_id=self.id, state=state, reason=reason))
 
     # -- the main loop -----------------------------------------------------------------
 
-    async def run(self) -> str:
+    async def run(self) -> TimelapseState:
         """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
         await self._prepare()
         worker = asyncio.create_task(self._analysis_worker(), name=f"time-lapse {self.id} analysis")
         try:
             await self._queue_unanalysed()
-            while self.state in ("running", "paused") and not self._shutdown:
+            while self.state in UNFINISHED_STATES and not self._shutdown:
                 await self._take_requests()
-                if self._shutdown or self.state not in ("running", "paused"):
+                if self._shutdown or self.state not in UNFINISHED_STATES:
                     break
-                if self.state == "paused":
+                if self.state == TimelapseState.PAUSED:
                     await self._idle(POLL_REAL_S)
                     continue
                 await self._step()
@@ -318,7 +326,7 @@ class Scheduler:
         if step.missed:
             await self._record_missed(step.missed)
         if step.action == "done":
-            await self._set_state("completed", finished=True)
+            await self._set_state(TimelapseState.COMPLETED, finished=True)
         elif step.action == "wait":
             await self._idle(min(POLL_REAL_S, max(0.0, step.at_s - now) / self.scope.clock.speed))
         else:
@@ -360,11 +368,11 @@ class Scheduler:
             self.t0_s = self.scope.clock.now()
             await asyncio.to_thread(self.index.set_t0, self.id, self.t0_s)
             self.processor.t0_s = self.t0_s
-        self._emit(
-            "state", state=self.state, reason="resumed" if resumed else "started",
+        self._publish(ev.StateEvent(
+            type="state", timelapse_id=self.id, state=self.state, reason="resumed" if resumed else "started",
             name=self.plan.name, count=self.count, interval_s=self.interval_s,
             positions=len(self.positions), t0_s=self.t0_s,
-        )
+        ))
         if self.plan.correction and corrector is None:
             why = calibration.describe_missing(self.profile, self.exposure_ms, self.gain_db)
             await self._alert(
@@ -381,7 +389,10 @@ class Scheduler:
         await asyncio.to_thread(self.index.record_missed, self.id, items, self._miss_reason)
         self._next_k = max(self._next_k, missed[-1] + 1)
         for k, planned in items:
-            self._emit("time_point", tp=k, status="missed", planned_s=planned, reason=self._miss_reason)
+            self._publish(ev.TimePointEvent(
+                type="time_point", timelapse_id=self.id, tp=k, status=TimePointState.MISSED, planned_s=planned,
+                reason=self._miss_reason,
+            ))
         span = f"{missed[0]}" + (f"..{missed[-1]}" if len(missed) > 1 else "")
         await self._alert("warning", "missed", f"{len(missed)} time point(s) missed ({span}): {self._miss_reason}")
 
@@ -394,16 +405,19 @@ class Scheduler:
             if pos.key not in done:
                 await asyncio.to_thread(
                     self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
-                    status="skipped", reason=reason,
+                    status=PositionState.SKIPPED, reason=reason,
                 )
         await self._finish_time_point(k, forced_reason=reason)
 
     async def _finish_time_point(self, k: int, forced_reason: str | None = None) -> None:
         rows = await asyncio.to_thread(self.index.positions, self.id, k)
-        ok = sum(r["status"] == "ok" for r in rows)
-        status = "done" if ok == len(self.positions) else ("failed" if ok == 0 else "partial")
+        ok = sum(r["status"] == PositionState.OK for r in rows)
+        if ok == len(self.positions):
+            status = TimePointState.DONE
+        else:
+            status = TimePointState.FAILED if ok == 0 else TimePointState.PARTIAL
         reason = forced_reason
-        if reason is None and status != "done":
+        if reason is None and status != TimePointState.DONE:
             reason = f"{len(self.positions) - ok} of {len(self.positions)} positions not imaged"
         row = await asyncio.to_thread(
             self.index.finish_time_point, self.id, k, status=status, finished_s=self.scope.clock.now(), reason=reason
@@ -413,8 +427,11 @@ class Scheduler:
         await self._drain_analysis()
         await self._update_culture_watch(k)
         await self._save_resume_state(watch=True)
-        fields = ("tp", "status", "planned_s", "started_s", "finished_s", "n_ok", "n_failed", "reason")
-        self._emit("time_point", **{key: row[key] for key in fields})
+        self._publish(ev.TimePointEvent(
+            type="time_point", timelapse_id=self.id, tp=row["tp"], status=row["status"], planned_s=row["planned_s"],
+            started_s=row["started_s"], finished_s=row["finished_s"], n_ok=row["n_ok"], n_failed=row["n_failed"],
+            reason=row["reason"],
+        ))
 
     # -- one time point ----------------------------------------------------------------
 
@@ -438,7 +455,10 @@ class Scheduler:
         self._open_k = k
         self._miss_reason = MISSED_OVERRUN
         late_s = started - planned
-        self._emit("time_point", tp=k, status="running", planned_s=planned, started_s=started, late_s=late_s)
+        self._publish(ev.TimePointEvent(
+            type="time_point", timelapse_id=self.id, tp=k, status=TimePointState.RUNNING, planned_s=planned,
+            started_s=started, late_s=late_s,
+        ))
         async with self.scope.claim(f"time-lapse {self.plan.name}"):
             if self.scope.last_position is None:
                 # Position unknown (not homed since connecting, or lost): nothing can move until homed.
@@ -447,10 +467,10 @@ class Scheduler:
             for i, pos in enumerate(todo):
                 if await self._interrupted():
                     return  # the time point stays open; a resume inside its slot completes it
-                self._emit(
-                    "progress", tp=k, count=self.count, position=pos.key, index=len(done) + i,
-                    positions=len(self.positions), late_s=round(late_s, 3),
-                )
+                self._publish(ev.ProgressEvent(
+                    type="progress", timelapse_id=self.id, tp=k, count=self.count, position=pos.key,
+                    index=len(done) + i, positions=len(self.positions), late_s=round(late_s, 3),
+                ))
                 try:
                     await self._image_position(k, pos)
                 except StorageStop as exc:
@@ -459,7 +479,7 @@ class Scheduler:
                 except Exception as exc:  # noqa: BLE001 - one position's bug must not end a days-long run
                     log.exception("time point %d, position %s", k, pos.key)
                     text = f"internal error: {type(exc).__name__}: {exc}"
-                    await self._record_position(k, pos, "failed", text)
+                    await self._record_position(k, pos, PositionState.FAILED, text)
                     await self._alert("error", "internal", f"time point {k}, position {pos.key}: {text}")
         await self._finish_time_point(k)
 
@@ -468,14 +488,14 @@ class Scheduler:
         if self._open_k is not None:
             with contextlib.suppress(OSError, sqlite3.DatabaseError):
                 await self._close_open_time_point(f"stopped: {why}")
-        await self._set_state("stopped", why, finished=True)
+        await self._set_state(TimelapseState.STOPPED, why, finished=True)
 
     async def _image_position(self, k: int, pos: PlannedPosition) -> None:
         done_planes = await asyncio.to_thread(self.index.frame_planes, self.id, k, pos.key)
         wanted = {(z, kind) for z in range(self.plan.frames_per_position) for kind in self.kinds}
         if wanted <= done_planes:
             # Saved in full before a restart; only its record was lost.
-            await self._record_position(k, pos, "ok", "frames were saved before the restart")
+            await self._record_position(k, pos, PositionState.OK, "frames were saved before the restart")
             return
         try:
             await self.scope.move_to(x_um=pos.x_um, y_um=pos.y_um)
@@ -492,22 +512,23 @@ class Scheduler:
             raise StorageStop(str(exc)) from exc
         self.software_s.append(saved.software_s)
         reason = None if result is None or result.found else result.message
-        await self._record_position(k, pos, "ok", reason, focus=None if result is None else result.to_dict())
-        self._emit_frames(k, pos, saved)
+        await self._record_position(k, pos, PositionState.OK, reason, focus=None if result is None else result.to_dict())
+        self._publish_frames(k, pos, saved)
         if saved.analysis_frame_ids and self._confluence is not None:
             await self._analysis.put(_AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
         await self._save_resume_state()
 
-    def _emit_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
+    def _publish_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
         for meta, path, frame_id in saved.frames:
-            self._emit(
-                "frame", tp=k, position=pos.key, well=pos.well, site=pos.site, z_index=meta.z_index,
-                kind=meta.kind, path=path, frame_id=frame_id, t_s=meta.t_s, z_um=meta.z_um,
+            self._publish(ev.FrameEvent(
+                type="frame", timelapse_id=self.id, tp=k, position=pos.key, well=pos.well, site=pos.site,
+                z_index=meta.z_index, kind=meta.kind, path=path, frame_id=frame_id, t_s=meta.t_s, z_um=meta.z_um,
                 focus_score=meta.focus_score, focus_found=meta.focus_found,
-            )
+            ))
 
     async def _record_position(
-        self, k: int, pos: PlannedPosition, status: str, reason: str | None, focus: dict[str, Any] | None = None
+        self, k: int, pos: PlannedPosition, status: PositionState, reason: str | None,
+        focus: dict[str, Any] | None = None,
     ) -> None:
         await asyncio.to_thread(
             self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
@@ -516,14 +537,14 @@ class Scheduler:
 
     async def _position_failed(self, k: int, pos: PlannedPosition, exc: HardwareError) -> None:
         reason = f"{type(exc).__name__}: {exc}"
-        await self._record_position(k, pos, "failed", reason)
+        await self._record_position(k, pos, PositionState.FAILED, reason)
         await self._alert("warning", "hardware", f"time point {k}, position {pos.key} failed: {exc}")
         try:
             what = await recover(self.scope, exc)
         except HardwareError as again:
             await self._alert("error", "hardware", f"scope not recovered after the fault at {pos.key}: {again}")
             return
-        self._emit("progress", tp=k, position=pos.key, recovered=what)
+        self._publish(ev.ProgressEvent(type="progress", timelapse_id=self.id, tp=k, position=pos.key, recovered=what))
 
     async def _focus(self, k: int, pos: PlannedPosition) -> tuple[float, FocusResult | None]:
         """The plane to image at: tracked, remembered from the first time point, or fixed."""
@@ -538,7 +559,9 @@ class Scheduler:
             return float(planes[pos.key]), None
 
         def point(p: FocusPoint) -> None:
-            self._emit("focus_point", tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s)
+            self._publish(ev.FocusPointEvent(
+                type="focus_point", timelapse_id=self.id, tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s,
+            ))
 
         nothing_known = not any(state.planes for state in self.tracker.keys.values())
         if nothing_known and self._first_finds.get(k, 0) < FIRST_FIND_TRIES:
@@ -614,7 +637,10 @@ class Scheduler:
                 )
                 value = float(result.fraction)
                 await asyncio.to_thread(self.index.set_confluence, job.frame_ids, value)
-                self._emit("frame_analysis", tp=job.k, position=job.key, frame_ids=job.frame_ids, confluence=value)
+                self._publish(ev.FrameAnalysisEvent(
+                    type="frame_analysis", timelapse_id=self.id, tp=job.k, position=job.key, frame_ids=job.frame_ids,
+                    confluence=value,
+                ))
             except Exception as exc:  # noqa: BLE001 - a frame that cannot be analysed keeps its other metrics
                 log.exception("confluence of time point %d, position %s", job.k, job.key)
                 await self._alert("warning", "analysis", f"confluence of {job.key} at time point {job.k} failed: {exc}")
