@@ -22,9 +22,10 @@ from collections.abc import Callable
 from pathlib import Path
 
 from daemon.states import FrameState
-from daemon.storage.frames import PARTIAL_SUFFIX, frame_relpath, make_dirs
+from daemon.storage.frames import frame_relpath
 from daemon.storage.index import Index
 from daemon.storage.ome import NotOurFrame, read_frame
+from drivers import atomic
 
 VERIFY_MODES = ("all", "recent", "size")
 
@@ -69,8 +70,8 @@ def _crc_of_file(path: Path) -> int:
 
 def _quarantine(data_dir: Path, rel: str) -> None:
     target = data_dir / "quarantine" / rel
-    make_dirs(target.parent)
-    os.replace(data_dir / rel, target)
+    atomic.make_dirs(target.parent)
+    atomic.move(data_dir / rel, target)
 
 
 def reconcile(
@@ -93,7 +94,7 @@ def reconcile(
             for name in files:
                 path = Path(folder) / name
                 rel = path.relative_to(data_dir).as_posix()
-                if name.endswith(PARTIAL_SUFFIX):
+                if name.endswith(atomic.TEMP_SUFFIX):
                     path.unlink()
                     report.removed_partials.append(rel)
                 elif name.endswith(".tif"):

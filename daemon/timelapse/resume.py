@@ -37,6 +37,9 @@ def run_lock(data_dir: Path) -> Iterator[None]:
     """Hold the data folder's acquisition lock, or raise :class:`FolderBusy` naming the holder."""
     data_dir.mkdir(parents=True, exist_ok=True)
     path = data_dir / LOCK_FILE
+    # Opened and written in place, not through drivers.atomic: the lock is held on this
+    # very file, and a rename would put another one in its place. Its content (the
+    # holder's pid) is only a hint for the message below.
     fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
     try:
         try:
