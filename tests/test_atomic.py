@@ -9,9 +9,9 @@ import os
 import stat
 from pathlib import Path
 
+import numpy as np
 import pytest
 import tifffile
-import numpy as np
 
 from drivers import atomic
 

@@ -6,8 +6,10 @@
 * Each time point holds the hardware (``scope.claim``) and visits every position: move,
   focus (tracking, first time point only, or off), expose (z-stack optional), then
   correct, score, write and index every frame (:mod:`daemon.timelapse.processing`) in a
-  worker thread. Confluence of the analysed plane is worked out by a background task
-  while the scope moves on, and feeds the culture watch at the end of the time point.
+  worker thread. Where to focus is the plan's focus policy (:mod:`daemon.timelapse.focusing`).
+  Confluence of the analysed plane is worked out by a background task while the scope
+  moves on, and feeds the culture watch at the end of the time point
+  (:mod:`daemon.timelapse.analysis`).
 * A hardware fault at one position (controller reset, camera unplugged) is recorded for
   that position with its reason; the scope is brought back and the next position runs.
 * A storage failure (disk full, I/O error) or the free-space reserve being reached stops
@@ -32,12 +34,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
-from daemon.storage.frames import FrameStore
-from daemon.storage.index import Index
-from daemon.storage.space import DEFAULT_RESERVE_MB, SpaceGuard, frame_bytes_estimate
-from daemon.timelapse import timing
 from daemon import events as ev
 from daemon.events import Event
 from daemon.states import (
@@ -48,9 +44,16 @@ from daemon.states import (
     TimelapseState,
     TimePointState,
 )
+from daemon.storage.frames import FrameStore
+from daemon.storage.index import Index
+from daemon.storage.space import DEFAULT_RESERVE_MB, SpaceGuard, frame_bytes_estimate
+from daemon.timelapse import timing
+from daemon.timelapse.analysis import AnalysisJob, ConfluenceWorker, confluence_function, watch_time_point
+from daemon.timelapse.focusing import FocusPolicy
 from daemon.timelapse.plan import Plan, PlannedPosition
 from daemon.timelapse.processing import FrameProcessor, PositionFrames, SavedPosition
 from daemon.timelapse.recovery import recover
+from daemon.timelapse.summary import RunningSummary
 from drivers.base import Frame, HardwareError, Position
 
 if TYPE_CHECKING:
@@ -61,29 +64,13 @@ log = logging.getLogger(__name__)
 
 # Real seconds between looks for pause/abort requests from other processes while waiting.
 POLL_REAL_S = 0.2
-# Analysed planes waiting for confluence; beyond this the position loop waits for the
-# analysis to catch up, so frames never pile up in memory.
-ANALYSIS_BACKLOG = 8
 MISSED_DOWN = "the daemon was not running"
 MISSED_OVERRUN = "the previous time point ran into this one's slot"
 MISSED_PAUSED = "the time-lapse was paused"
-# Cold focus searches per time point while no plane is known yet: enough to get past an
-# empty well or a bubble, few enough that a dead lamp does not cost a search at every
-# position.
-FIRST_FIND_TRIES = 2
 
 
 class StorageStop(Exception):
     """Raised inside a time point when storage can take no more frames."""
-
-
-@dataclasses.dataclass
-class _AnalysisJob:
-    k: int
-    key: str
-    frame_ids: list[int]
-    image: np.ndarray | None  # None: read it back from ``path``
-    path: str = ""
 
 
 def positions_to_dicts(positions: list[PlannedPosition]) -> list[dict[str, Any]]:
@@ -92,14 +79,6 @@ def positions_to_dicts(positions: list[PlannedPosition]) -> list[dict[str, Any]]
 
 def positions_from_dicts(items: list[dict[str, Any]]) -> list[PlannedPosition]:
     return [PlannedPosition(**d) for d in items]
-
-
-def z_planes_um(focus_z_um: float, plan: Plan) -> list[float]:
-    """The planes imaged at a position: the focal plane, or a z-stack centred on it, bottom up."""
-    if plan.z_stack is None:
-        return [focus_z_um]
-    n, step = plan.z_stack.count, plan.z_stack.step_um
-    return [focus_z_um + (i - (n - 1) / 2.0) * step for i in range(n)]
 
 
 class Scheduler:
@@ -117,7 +96,6 @@ class Scheduler:
         resumed: bool = False,
     ) -> None:
         from daemon.culture.alerts import CultureWatch
-        from daemon.focus.tracking import FocusTracker
 
         row = index.require_timelapse(timelapse_id)
         self.scope = scope
@@ -136,25 +114,24 @@ class Scheduler:
         self.store = FrameStore(data_dir, index)
         self.guard = space_guard or SpaceGuard(data_dir, row["reserve_mb"])
         saved = index.resume_state(timelapse_id)
-        self.tracker = (
-            FocusTracker.from_dict(self.profile, saved["tracker"]) if saved.get("tracker") else FocusTracker(self.profile)
-        )
+        self.focusing = FocusPolicy.from_saved(self.profile, self.plan.autofocus, saved)
         self.watch = CultureWatch.from_dict(saved["watch"]) if saved.get("watch") else CultureWatch()
-        self.first_focus: dict[str, Any] = saved.get("first_focus") or {"planes": {}, "fixed_z_um": None}
         cam = self.profile.camera
         self.exposure_ms = self.plan.exposure_ms if self.plan.exposure_ms is not None else cam.exposure_ms
         self.gain_db = self.plan.gain_db if self.plan.gain_db is not None else cam.gain_db
-        self.analysis_plane = self.plan.analysis_plane
         self.processor: FrameProcessor | None = None
-        self.software_s: list[float] = []  # critical-path software time of each position saved
-        self._confluence: Callable[..., Any] | None = None
-        self._analysis: asyncio.Queue[_AnalysisJob] = asyncio.Queue(maxsize=ANALYSIS_BACKLOG)
+        # Critical-path software time of each position saved (s): a bounded record, the run lasts days.
+        self.software_s = RunningSummary()
+        self.analysis = ConfluenceWorker(
+            index, timelapse_id, data_dir, pixel_size_um=self.profile.optics.pixel_size_um,
+            analysis_plane=self.plan.analysis_plane, publish=self._publish, alert=self._alert,
+            measure=confluence_function(),
+        )
         self._request: str | None = None  # a Request, or what another process posted
         self._shutdown = False
         self._wake = asyncio.Event()
         self._miss_reason = MISSED_DOWN if resumed else MISSED_OVERRUN
         self._next_k, self._open_k = self._progress_from_index()
-        self._first_finds: dict[int, int] = {}
 
     # -- construction ------------------------------------------------------------------
 
@@ -296,22 +273,18 @@ class Scheduler:
     async def run(self) -> TimelapseState:
         """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
         await self._prepare()
-        worker = asyncio.create_task(self._analysis_worker(), name=f"time-lapse {self.id} analysis")
         try:
-            await self._queue_unanalysed()
-            while self.state in UNFINISHED_STATES and not self._shutdown:
-                await self._take_requests()
-                if self._shutdown or self.state not in UNFINISHED_STATES:
-                    break
-                if self.state == TimelapseState.PAUSED:
-                    await self._idle(POLL_REAL_S)
-                    continue
-                await self._step()
-            await self._drain_analysis()
+            async with self.analysis.running():
+                while self.state in UNFINISHED_STATES and not self._shutdown:
+                    await self._take_requests()
+                    if self._shutdown or self.state not in UNFINISHED_STATES:
+                        break
+                    if self.state == TimelapseState.PAUSED:
+                        await self._idle(POLL_REAL_S)
+                        continue
+                    await self._step()
+                await self.analysis.drain()
         finally:
-            worker.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await worker
             await self._save_resume_state(watch=True)
         return self.state
 
@@ -353,14 +326,8 @@ class Scheduler:
         self.processor = FrameProcessor(
             self.store, timelapse_id=self.id, timelapse_name=self.plan.name, t0_s=self.t0_s,
             pixel_size_um=self.profile.optics.pixel_size_um, objective=self.profile.optics.objective,
-            kinds=kinds, corrector=corrector, analysis_plane=self.analysis_plane,
+            kinds=kinds, corrector=corrector, analysis_plane=self.plan.analysis_plane,
         )
-        try:
-            from daemon.culture.confluence import confluence
-        except ImportError:
-            self._confluence = None  # culture analysis not installed: frames carry the focus score only
-        else:
-            self._confluence = confluence
         resumed = bool(await asyncio.to_thread(self.index.time_points, self.id))
         if not resumed:
             # Time point 0 is planned for when acquisition can really begin, not for when
@@ -424,8 +391,8 @@ class Scheduler:
         )
         self._open_k = None
         self._next_k = max(self._next_k, k + 1)
-        await self._drain_analysis()
-        await self._update_culture_watch(k)
+        await self.analysis.drain()
+        await watch_time_point(self.index, self.id, self.watch, k, self._alert)
         await self._save_resume_state(watch=True)
         self._publish(ev.TimePointEvent(
             type="time_point", timelapse_id=self.id, tp=row["tp"], status=row["status"], planned_s=row["planned_s"],
@@ -510,12 +477,12 @@ class Scheduler:
             saved = await asyncio.to_thread(self.processor.save_position, data)
         except (OSError, sqlite3.DatabaseError) as exc:
             raise StorageStop(str(exc)) from exc
-        self.software_s.append(saved.software_s)
+        self.software_s.add(saved.software_s)
         reason = None if result is None or result.found else result.message
         await self._record_position(k, pos, PositionState.OK, reason, focus=None if result is None else result.to_dict())
         self._publish_frames(k, pos, saved)
-        if saved.analysis_frame_ids and self._confluence is not None:
-            await self._analysis.put(_AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
+        if saved.analysis_frame_ids:
+            await self.analysis.submit(AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
         await self._save_resume_state()
 
     def _publish_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
@@ -547,49 +514,20 @@ class Scheduler:
         self._publish(ev.ProgressEvent(type="progress", timelapse_id=self.id, tp=k, position=pos.key, recovered=what))
 
     async def _focus(self, k: int, pos: PlannedPosition) -> tuple[float, FocusResult | None]:
-        """The plane to image at: tracked, remembered from the first time point, or fixed."""
-        policy = self.plan.autofocus
-        planes: dict[str, float] = self.first_focus["planes"]
-        if policy == "off":
-            if self.first_focus.get("fixed_z_um") is None:
-                # Focus off: every position is imaged in the plane the user left the focus at.
-                self.first_focus["fixed_z_um"] = (await self.scope.position()).z_um
-            return float(self.first_focus["fixed_z_um"]), None
-        if policy == "first" and pos.key in planes:
-            return float(planes[pos.key]), None
+        """The plane to image at, by the plan's focus policy; each focus frame goes out as an event."""
 
         def point(p: FocusPoint) -> None:
             self._publish(ev.FocusPointEvent(
                 type="focus_point", timelapse_id=self.id, tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s,
             ))
 
-        nothing_known = not any(state.planes for state in self.tracker.keys.values())
-        if nothing_known and self._first_finds.get(k, 0) < FIRST_FIND_TRIES:
-            self._first_finds[k] = self._first_finds.get(k, 0) + 1
-            result = await self._first_find(pos, point)
-        else:
-            result = await self.tracker.focus(self.scope, pos.key, pos.x_um, pos.y_um, on_point=point)
-        if policy == "first" and result.found:
-            planes[pos.key] = result.z_um
-        return result.z_um, result
-
-    async def _first_find(self, pos: PlannedPosition, on_point: Callable[[FocusPoint], None]) -> FocusResult:
-        """Focus with nothing known yet: a cold search around the present focus, or around
-        the profile's ``[focus] nominal_z_um`` when the focus sits far from it (homing
-        leaves the objective at the bottom of its travel). After this the tracker's focus
-        surface predicts every other position.
-        """
-        from daemon.focus.autofocus import autofocus
-
-        result = await autofocus(self.scope, on_point=on_point)
-        result.message += " (first search of the time-lapse)"
-        return self.tracker.record(pos.key, pos.x_um, pos.y_um, result)
+        return await self.focusing.focus(self.scope, k, pos, point)
 
     async def _expose(
         self, focus_z_um: float, result: FocusResult | None, done_planes: set[tuple[int, str]]
     ) -> list[tuple[int, Frame, Position]]:
         frames: list[tuple[int, Frame, Position]] = []
-        planes = z_planes_um(focus_z_um, self.plan)
+        planes = self.plan.planes_um(focus_z_um)
         scope = self.scope
         for zi, z in enumerate(planes):
             if all((zi, kind) in done_planes for kind in self.kinds):
@@ -608,59 +546,8 @@ class Scheduler:
             frames.append((zi, frame, here))
         return frames
 
-    # -- confluence, in the background -------------------------------------------------
-
-    async def _queue_unanalysed(self) -> None:
-        """Analyse what a restart cut off: analysed-plane frames still without confluence."""
-        if self._confluence is None:
-            return
-        rows = await asyncio.to_thread(self.index.frames_awaiting_analysis, self.id, self.analysis_plane)
-        by_plane: dict[tuple[int, str], list[dict[str, Any]]] = {}
-        for r in rows:
-            by_plane.setdefault((r["tp"], r["key"]), []).append(r)
-        for (k, key), group in by_plane.items():
-            source = next((r for r in group if r["kind"] == "corrected"), group[0])
-            await self._analysis.put(_AnalysisJob(k, key, [r["id"] for r in group], None, source["path"]))
-
-    async def _analysis_worker(self) -> None:
-        import tifffile
-
-        while True:
-            job = await self._analysis.get()
-            try:
-                image = job.image
-                if image is None:
-                    image = await asyncio.to_thread(tifffile.imread, self.data_dir / job.path)
-                assert self._confluence is not None
-                result = await asyncio.to_thread(
-                    self._confluence, image, pixel_size_um=self.profile.optics.pixel_size_um
-                )
-                value = float(result.fraction)
-                await asyncio.to_thread(self.index.set_confluence, job.frame_ids, value)
-                self._publish(ev.FrameAnalysisEvent(
-                    type="frame_analysis", timelapse_id=self.id, tp=job.k, position=job.key, frame_ids=job.frame_ids,
-                    confluence=value,
-                ))
-            except Exception as exc:  # noqa: BLE001 - a frame that cannot be analysed keeps its other metrics
-                log.exception("confluence of time point %d, position %s", job.k, job.key)
-                await self._alert("warning", "analysis", f"confluence of {job.key} at time point {job.k} failed: {exc}")
-            finally:
-                self._analysis.task_done()
-
-    async def _drain_analysis(self) -> None:
-        await self._analysis.join()
-
-    async def _update_culture_watch(self, k: int) -> None:
-        """Feed the well readings of time point ``k`` to the culture watch."""
-        from daemon.culture.readings import timelapse_readings
-
-        readings = await asyncio.to_thread(timelapse_readings, self.index, self.id, tp=k)
-        for alert in self.watch.feed(readings):
-            level = "info" if alert.kind == "confluence_reached" else "warning"
-            await self._alert(level, alert.kind, alert.message)
-
     async def _save_resume_state(self, *, watch: bool = False) -> None:
-        parts: dict[str, Any] = {"tracker": self.tracker.to_dict(), "first_focus": self.first_focus}
+        parts: dict[str, Any] = self.focusing.resume_state()
         if watch:
             parts["watch"] = self.watch.to_dict()
         with contextlib.suppress(OSError, sqlite3.DatabaseError):
