@@ -10,12 +10,13 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import json
-import os
 import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Protocol
+
+from drivers import atomic
 
 
 class Clock(Protocol):
@@ -118,6 +119,5 @@ class ScaledClock:
     def save(self) -> None:
         if self._state_file is None:
             return
-        tmp = self._state_file.with_suffix(".tmp")
-        tmp.write_text(json.dumps({"sim_s": self.now(), "real_s": time.time(), "speed": self.speed}))
-        os.replace(tmp, self._state_file)
+        state = {"sim_s": self.now(), "real_s": time.time(), "speed": self.speed}
+        atomic.write_text(self._state_file, json.dumps(state))

@@ -15,19 +15,28 @@ import tifffile
 
 from daemon.storage import frames as frames_mod
 from daemon.storage.export import export_csv, export_stacks
-from daemon.storage.frames import FrameStore, StorageWriteError, frame_relpath, write_atomic
+from daemon.storage.frames import FrameStore, StorageWriteError, frame_relpath
 from daemon.storage.index import DuplicateFrame, Index, open_index
 from daemon.storage.ome import FrameMeta, encode_frame, read_frame
 from daemon.storage.reconcile import reconcile
 from daemon.storage.space import MB, SpaceGuard
+from daemon.timelapse.plan import Plan, ZStack
+from drivers import atomic
 from tests.helpers import sim_profile
 
 PIXEL_UM = sim_profile().optics.pixel_size_um  # 3.75 um camera pixel / 10x = 0.375 um
 
 
 def _timelapse(index: Index, name: str = "LR-0412 growth") -> int:
+    # Recorded as the scheduler records one: the plan and its positions (site B3-2 has a z-stack).
+    plan = Plan(
+        name=name, vessel="96-well", wells=["B3"], sites_per_well=2, interval_s=600.0, count=4, autofocus="track",
+        z_stack=ZStack(3, 5.0), exposure_ms=20.0, gain_db=3.0, correction=False, save="raw",
+    )
+    positions = [{"key": f"B3-{s}", "well": "B3", "site": s, "x_um": 23380.0, "y_um": 20240.0} for s in (1, 2)]
     return index.create_timelapse(
-        name=name, plan={"name": name}, profile_path="hw_profiles/sim.toml", profile_name="sim",
+        name=name, plan={"plan": plan.to_dict(), "positions": positions}, profile_path="hw_profiles/sim.toml",
+        profile_name="sim",
         created_s=1.77e9, t0_s=1.77e9, interval_s=600.0, count=4, n_positions=2, reserve_mb=1.0,
     )
 
@@ -138,7 +147,7 @@ def test_power_cut_at_each_step_is_reconciled(
     store.save(_pixels(1), _meta(tl, key="B3-1"))
     meta = _meta(tl, key="B3-2")
     final = store.data_dir / frame_relpath(store.folder(tl), meta)
-    tmp = frames_mod.partial_name(final)
+    tmp = atomic.temp_name(final)
 
     def cut(*_a, **_k):  # type: ignore[no-untyped-def]
         raise PowerCut
@@ -148,9 +157,9 @@ def test_power_cut_at_each_step_is_reconciled(
     if cut_at == "write":
         monkeypatch.setattr(frames_mod, "_write_all", lambda fh, data: (fh.write(bytes(data)[:100]), cut()))
     elif cut_at == "fsync":
-        monkeypatch.setattr(frames_mod.os, "fsync", cut)
+        monkeypatch.setattr(atomic.os, "fsync", cut)
     elif cut_at == "rename":
-        monkeypatch.setattr(frames_mod.os, "replace", cut)
+        monkeypatch.setattr(atomic.os, "replace", cut)
     else:
         monkeypatch.setattr(store.index, "add_frame", cut)
     with pytest.raises(PowerCut):
@@ -225,14 +234,6 @@ def test_space_guard_keeps_the_reserve() -> None:
     low = guard.check(60 * MB)
     assert not low.ok
     assert "150 MB free" in low.message and "100 MB are kept in reserve" in low.message
-
-
-def test_write_atomic_replaces_whole_file(tmp_path: Path) -> None:
-    target = tmp_path / "a.bin"
-    write_atomic(target, b"first")
-    write_atomic(target, b"second version")
-    assert target.read_bytes() == b"second version"
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.bin"]
 
 
 def test_exports_csv_and_ome_stacks(store: FrameStore, tmp_path: Path) -> None:

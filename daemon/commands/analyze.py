@@ -25,6 +25,7 @@ from daemon.commands.common import print_json
 from daemon.culture.confluence import confluence, overlay
 from daemon.culture.counting import count_cells
 from daemon.profile import Profile, load_profile
+from drivers import atomic
 from drivers.registry import offline_truth
 from drivers.truth import GroundTruth
 
@@ -178,9 +179,11 @@ def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_
     if overlay_dir is not None and result.mask is not None:
         rel = path.relative_to(root) if path != root else Path(path.name)
         out = overlay_dir / rel.parent / (rel.stem + OVERLAY_SUFFIX)
-        out.parent.mkdir(parents=True, exist_ok=True)
-        if not cv2.imwrite(str(out), overlay(info.pixels, result.mask)):
-            raise OSError(5, "could not write the overlay PNG", str(out))
+        ok, png = cv2.imencode(".png", overlay(info.pixels, result.mask))
+        if not ok:
+            raise OSError(5, "could not encode the overlay PNG", str(out))
+        atomic.make_dirs(out.parent)
+        atomic.write_bytes(out, png.tobytes())
         row["overlay"] = str(out)
     return row
 

@@ -16,7 +16,6 @@ import argparse
 import asyncio
 import datetime as dt
 import json
-import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -36,6 +35,7 @@ from daemon.illumination.characterize import (
 )
 from daemon.profile import Profile, load_profile
 from daemon.scope import Scope
+from drivers import atomic
 
 EXIT_CHARACTERIZATION = 2
 
@@ -105,9 +105,7 @@ def report_dict(
 
 
 def _write_json(path: Path, obj: Any) -> None:
-    tmp = path.with_name(f".{path.name}.partial")
-    tmp.write_text(json.dumps(obj, indent=2, default=str), encoding="utf-8")
-    os.replace(tmp, path)
+    atomic.write_text(path, json.dumps(obj, indent=2, default=str))
 
 
 async def characterize(

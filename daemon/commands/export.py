@@ -28,7 +28,10 @@ def run(args: argparse.Namespace) -> int:
         out = args.output or default_export_dir(args.data, index, args.id)
         frames_csv, points_csv = export_csv(index, args.id, out)
         n_frames = len(index.frames(args.id))
-        print(f"wrote {frames_csv} ({n_frames} frames), {points_csv} and {frames_csv.with_name('growth.csv')}")
+        print(
+            f"wrote {frames_csv} ({n_frames} frames), {points_csv}, {frames_csv.with_name('wells.csv')}"
+            f" and {frames_csv.with_name('growth.csv')}"
+        )
         if args.stacks:
             stacks = export_stacks(index, args.data, args.id, out, kind=args.kind)
             for s in stacks:

@@ -13,8 +13,8 @@ import tifffile
 from daemon.commands.common import add_position_options, add_profile_options, target_position_um, truth_beside
 from daemon.hardware import build_scope
 from daemon.profile import load_profile
-from daemon.storage.frames import atomic_open
 from daemon.storage.ome import iso_utc
+from drivers import atomic
 from drivers.base import Frame
 
 
@@ -52,7 +52,7 @@ def write_tiff(path: Path, frame: Frame, *, pixel_size_um: float, x_um: float, y
         },
         "AcquisitionDate": iso_utc(frame.t_s),
     }
-    with atomic_open(path) as fh:
+    with atomic.open_atomic(path) as fh:
         tifffile.imwrite(fh, np.ascontiguousarray(frame.pixels), ome=True, photometric="minisblack", metadata=metadata)
 
 

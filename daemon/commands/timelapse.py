@@ -22,8 +22,17 @@ from pathlib import Path
 from typing import Any
 
 from daemon.commands.common import add_profile_options, print_json
+from daemon.events import Event
+from daemon.states import (
+    ENDED_TIME_POINT_STATES,
+    UNFINISHED_STATES,
+    FrameState,
+    PositionState,
+    Request,
+    TimelapseState,
+    TimePointState,
+)
 from daemon.storage.space import DEFAULT_RESERVE_MB
-from daemon.timelapse.events import Event
 
 EXIT_STOPPED = 3
 
@@ -127,10 +136,10 @@ class ProgressDisplay:
     def _time_point(self, event: Event) -> None:
         k = event["tp"]
         of = f"/{self.count}" if self.count else ""  # shown counting from 1; stored from 0
-        if event["status"] == "running":
+        if event["status"] == TimePointState.RUNNING:
             late = event.get("late_s") or 0.0
             self._line(f"time point {k + 1}{of} started {clock_text(event['started_s'])} UTC ({late:+.1f} s from plan)")
-        elif event["status"] == "missed":
+        elif event["status"] == TimePointState.MISSED:
             self._line(f"time point {k + 1}{of} missed (planned {clock_text(event['planned_s'])} UTC): {event.get('reason')}")
         else:
             took = (event["finished_s"] or 0.0) - (event["started_s"] or 0.0)
@@ -150,17 +159,17 @@ async def _run_scheduler(scheduler: Any, display: ProgressDisplay, data_dir: Pat
     finally:
         for sig in (signal.SIGINT, signal.SIGTERM):
             loop.remove_signal_handler(sig)
-    if state in ("running", "paused"):
+    if state in UNFINISHED_STATES:
         print(
             f"time-lapse {scheduler.id} left {state}; continue it with: "
             f"phasewatch timelapse resume --profile {scheduler.profile.name} --data {data_dir}"
         )
         return 0
-    if state == "stopped":
+    if state == TimelapseState.STOPPED:
         print(f"time-lapse {scheduler.id} stopped: {scheduler.index.timelapse(scheduler.id)['stop_reason']}", file=sys.stderr)
         return EXIT_STOPPED
     rows = scheduler.index.time_points(scheduler.id)
-    counts = {s: sum(r["status"] == s for r in rows) for s in ("done", "partial", "failed", "missed")}
+    counts = {s: sum(r["status"] == s for r in rows) for s in ENDED_TIME_POINT_STATES}
     print(
         f"time-lapse {scheduler.id} {state}: " + ", ".join(f"{v} {k}" for k, v in counts.items())
         + f"; export with: phasewatch export {scheduler.id} --data {data_dir}"
@@ -274,13 +283,15 @@ def _open_existing(data_dir: Path) -> Any:
 
 def summarise(index: Any, tl: dict[str, Any]) -> dict[str, Any]:
     points = index.time_points(tl["id"])
-    statuses = {s: sum(p["status"] == s for p in points) for s in ("done", "partial", "failed", "missed", "running")}
+    statuses = {
+        str(s): sum(p["status"] == s for p in points) for s in (*ENDED_TIME_POINT_STATES, TimePointState.RUNNING)
+    }
     frames = index.frames(tl["id"])
     return {
         "id": tl["id"], "name": tl["name"], "state": tl["state"], "profile": tl["profile_name"],
         "count": tl["count"], "interval_s": tl["interval_s"], "positions": tl["n_positions"],
         "t0_utc": clock_text(tl["t0_s"]), "time_points": statuses, "frames": len(frames),
-        "frames_not_ok": sum(f["status"] != "ok" for f in frames), "stop_reason": tl["stop_reason"],
+        "frames_not_ok": sum(f["status"] != FrameState.OK for f in frames), "stop_reason": tl["stop_reason"],
         "folder": tl["folder"],
     }
 
@@ -297,7 +308,7 @@ def run_list(args: argparse.Namespace) -> int:
     print(f"{'id':>4}  {'state':<9} {'time points':<26} {'frames':>7}  {'t0 (UTC)':<19}  name")
     for r in rows:
         tp = r["time_points"]
-        done = f"{tp['done'] + tp['partial']}/{r['count']} run, {tp['missed']} missed"
+        done = f"{tp[TimePointState.DONE] + tp[TimePointState.PARTIAL]}/{r['count']} run, {tp[TimePointState.MISSED]} missed"
         print(f"{r['id']:>4}  {r['state']:<9} {done:<26} {r['frames']:>7}  {r['t0_utc']:<19}  {r['name']}")
     return 0
 
@@ -308,7 +319,7 @@ def run_show(args: argparse.Namespace) -> int:
         report = {
             **summarise(index, tl),
             "time_point_list": index.time_points(args.id),
-            "failed_positions": [p for p in index.positions(args.id) if p["status"] != "ok"],
+            "failed_positions": [p for p in index.positions(args.id) if p["status"] != PositionState.OK],
             "alerts": index.alerts(args.id),
         }
     if args.json:
@@ -331,7 +342,7 @@ def run_request(args: argparse.Namespace) -> int:
 
     with _open_existing(args.data) as index:
         tl = index.require_timelapse(args.id)
-        if tl["state"] not in ("running", "paused"):
+        if tl["state"] not in UNFINISHED_STATES:
             print(f"phasewatch: time-lapse {args.id} is {tl['state']}; nothing to {args.request}", file=sys.stderr)
             return 2
         if folder_busy(args.data):
@@ -339,14 +350,14 @@ def run_request(args: argparse.Namespace) -> int:
             print(f"asked the running process to {args.request} time-lapse {args.id} (takes effect between positions)")
             return 0
         # Nobody is running it: apply directly.
-        state = "paused" if args.request == "pause" else "aborted"
-        if state == "aborted":
+        state = TimelapseState.PAUSED if args.request == Request.PAUSE else TimelapseState.ABORTED
+        if state == TimelapseState.ABORTED:
             for p in index.time_points(args.id):
-                if p["status"] == "running":
+                if p["status"] == TimePointState.RUNNING:
                     # Left open by a crash; when it really ended is unknown, so its start stands in.
-                    ok = sum(q["status"] == "ok" for q in index.positions(args.id, p["tp"]))
+                    ok = sum(q["status"] == PositionState.OK for q in index.positions(args.id, p["tp"]))
                     index.finish_time_point(
-                        args.id, p["tp"], status="partial" if ok else "failed",
+                        args.id, p["tp"], status=TimePointState.PARTIAL if ok else TimePointState.FAILED,
                         finished_s=p["started_s"], reason="aborted while interrupted",
                     )
         index.set_state(args.id, state, reason=f"{state} by request", finished_s=None)

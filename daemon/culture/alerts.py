@@ -1,6 +1,7 @@
 """Culture alerts per well: passaging confluence reached, sudden drop, focus failing.
 
-The time-lapse feeds :meth:`CultureWatch.update` once per well and time point; the alerts
+The time-lapse feeds :meth:`CultureWatch.feed` the well readings of each time point
+(:mod:`daemon.culture.readings`), that is :meth:`CultureWatch.update` once per well; the alerts
 it returns go to the event stream and the interface. The whole watch (rules and per-well
 state) round-trips through :meth:`CultureWatch.to_dict` / :meth:`CultureWatch.from_dict`,
 so a restarted daemon neither repeats nor forgets an alert.
@@ -10,7 +11,13 @@ from __future__ import annotations
 
 import dataclasses
 from collections import deque
-from typing import Any
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any
+
+from daemon.states import FocusState
+
+if TYPE_CHECKING:
+    from daemon.culture.readings import WellReading
 
 CONFLUENCE_REACHED = "confluence_reached"
 CONFLUENCE_DROP = "confluence_drop"
@@ -151,6 +158,15 @@ class CultureWatch:
         c = float(confluence)
         alerts.extend(self._check_drop(well, t_s, c, rules, st))
         alerts.extend(self._check_threshold(well, t_s, c, rules, st))
+        return alerts
+
+    def feed(self, readings: Iterable[WellReading]) -> list[Alert]:
+        """Feed the well readings of one time point (:mod:`daemon.culture.readings`, which
+        decides which sites count); returns the alerts they raise."""
+        alerts: list[Alert] = []
+        for r in readings:
+            if r.informative:
+                alerts.extend(self.update(r.well, r.t_s, r.confluence, r.focus != FocusState.FAILED))
         return alerts
 
     def _check_threshold(self, well: str, t_s: float, c: float, rules: WatchRules, st: _WellState) -> list[Alert]:

@@ -23,7 +23,6 @@ import datetime as dt
 import hashlib
 import json
 import math
-import os
 import re
 from collections.abc import Callable
 from pathlib import Path
@@ -37,6 +36,7 @@ from daemon import __version__
 from daemon.illumination import CalibrationError
 from daemon.illumination.correction import MIN_RESPONSE_FRACTION, Corrector
 from daemon.illumination.stats import RunningStats
+from drivers import atomic
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
@@ -83,26 +83,6 @@ def _sha256(path: Path) -> str:
         for block in iter(lambda: fh.read(1 << 20), b""):
             h.update(block)
     return h.hexdigest()
-
-
-def _write_atomic(path: Path, write: Callable[[Any], None]) -> None:
-    tmp = path.with_name(f".{path.name}.partial")
-    with open(tmp, "wb") as fh:
-        write(fh)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-
-
-def _fsync_dir(path: Path) -> None:
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def full_scale_dn(bit_depth: int) -> float:
@@ -381,14 +361,13 @@ class CalibrationStore:
             directory = other.path.parent
         else:
             directory = self.objective_dir(profile) / _setting_dir(exposure_ms, gain_db)
-        directory.mkdir(parents=True, exist_ok=True)
+        atomic.make_dirs(directory)
         tif = directory / f"{kind}.tif"
         pixels = np.ascontiguousarray(frame, dtype=np.float32)
-        _write_atomic(tif, lambda fh: tifffile.imwrite(fh, pixels, photometric="minisblack", metadata=meta))
+        with atomic.open_atomic(tif) as fh:
+            tifffile.imwrite(fh, pixels, photometric="minisblack", metadata=meta)
         record = {**meta, "file": tif.name, "sha256": _sha256(tif)}
-        text = json.dumps(record, indent=2, default=str)
-        _write_atomic(directory / f"{kind}.json", lambda fh: fh.write(text.encode("utf-8")))
-        _fsync_dir(directory)
+        atomic.write_text(directory / f"{kind}.json", json.dumps(record, indent=2, default=str))
         return tif
 
     def _base_meta(

@@ -33,6 +33,7 @@ from scipy import ndimage
 
 from daemon.illumination import CalibrationError
 from daemon.illumination.stats import RunningStats
+from drivers import atomic
 
 if TYPE_CHECKING:
     from daemon.scope import Scope
@@ -577,6 +578,9 @@ def plot_photon_transfer(
         ]
     ax.text(0.0, 0.02, "\n".join(notes), transform=ax.transAxes, fontsize=8, color="0.3", va="bottom")
 
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
+    atomic.make_dirs(path.parent)
+    try:
+        with atomic.open_atomic(path) as fh:
+            fig.savefig(fh, dpi=110, format="png")
+    finally:
+        plt.close(fig)

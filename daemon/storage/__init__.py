@@ -5,8 +5,8 @@ into the index, so an indexed frame always points at a complete file. On start-u
 :func:`daemon.storage.reconcile.reconcile` brings files and index back into agreement.
 """
 
-from daemon.storage.frames import FrameStore, StorageWriteError, write_atomic
+from daemon.storage.frames import FrameStore, StorageWriteError
 from daemon.storage.index import Index, open_index
 from daemon.storage.ome import FrameMeta
 
-__all__ = ["FrameMeta", "FrameStore", "Index", "StorageWriteError", "open_index", "write_atomic"]
+__all__ = ["FrameMeta", "FrameStore", "Index", "StorageWriteError", "open_index"]

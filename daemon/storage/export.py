@@ -1,4 +1,4 @@
-"""Exports of a time-lapse: CSV of per-frame metrics, and one multi-page OME-TIFF per position."""
+"""Exports of a time-lapse: CSV of per-frame and per-well metrics, and one multi-page OME-TIFF per position."""
 
 from __future__ import annotations
 
@@ -11,9 +11,10 @@ from typing import Any
 import numpy as np
 import tifffile
 
-from daemon.storage.frames import atomic_open, make_dirs
+from daemon.states import FrameState
 from daemon.storage.index import Index
 from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
+from drivers import atomic
 
 FRAME_COLUMNS = (
     "timelapse_id", "time_point", "planned_s", "t_s", "time_utc", "elapsed_h", "late_s", "position",
@@ -27,17 +28,18 @@ TIME_POINT_COLUMNS = (
 
 
 def _atomic_csv(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> None:
-    with atomic_open(path, "w", newline="", encoding="utf-8") as fh:
+    with atomic.open_atomic(path, "w", newline="", encoding="utf-8") as fh:
         writer = csv.writer(fh)
         writer.writerow(header)
         writer.writerows(rows)
 
 
 def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
-    """Write ``frames.csv`` (one row per frame), ``time-points.csv`` (incl. missed ones) and
-    ``growth.csv`` (one growth fit per well: doubling time, its uncertainty, fit quality)."""
+    """Write ``frames.csv`` (one row per frame), ``time-points.csv`` (incl. missed ones),
+    ``wells.csv`` (one row per well and time point: confluence of the sites used, focus)
+    and ``growth.csv`` (one growth fit per well: doubling time, its uncertainty, fit quality)."""
     tl = index.require_timelapse(tl_id)
-    make_dirs(out_dir)
+    atomic.make_dirs(out_dir)
     t0 = tl["t0_s"]
     points = {tp["tp"]: tp for tp in index.time_points(tl_id)}
     frame_rows = []
@@ -66,11 +68,12 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     points_csv = out_dir / "time-points.csv"
     _atomic_csv(frames_csv, FRAME_COLUMNS, frame_rows)
     _atomic_csv(points_csv, TIME_POINT_COLUMNS, tp_rows)
-    from daemon.culture.growth import GROWTH_COLUMNS, fit_plate, growth_rows
-    from daemon.culture.series import analysed_frames, well_series
+    from daemon.culture.growth import GROWTH_COLUMNS, growth_rows
+    from daemon.culture.readings import WELL_COLUMNS, growth_fits, timelapse_readings, well_rows
 
-    fits = fit_plate(well_series(analysed_frames(index.frames(tl_id))))
-    _atomic_csv(out_dir / "growth.csv", GROWTH_COLUMNS, growth_rows(fits))
+    readings = timelapse_readings(index, tl_id)
+    _atomic_csv(out_dir / "wells.csv", WELL_COLUMNS, well_rows(readings))
+    _atomic_csv(out_dir / "growth.csv", GROWTH_COLUMNS, growth_rows(growth_fits(readings)))
     return frames_csv, points_csv
 
 
@@ -103,14 +106,14 @@ def export_stacks(
     counted; the planes' DeltaT keeps the true acquisition times.
     """
     tl = index.require_timelapse(tl_id)
-    frames = [f for f in index.frames(tl_id) if f["status"] == "ok"]
+    frames = [f for f in index.frames(tl_id) if f["status"] == FrameState.OK]
     if kind is None:
         kind = "corrected" if any(f["kind"] == "corrected" for f in frames) else "raw"
     by_position: dict[str, dict[int, dict[int, dict[str, Any]]]] = {}
     for f in frames:
         if f["kind"] == kind:
             by_position.setdefault(f["key"], {}).setdefault(f["tp"], {})[f["z_index"]] = f
-    make_dirs(out_dir)
+    atomic.make_dirs(out_dir)
     results = []
     for key in sorted(by_position):
         per_tp = by_position[key]
@@ -131,7 +134,7 @@ def export_stacks(
                 yield tifffile.imread(data_dir / r["path"])
 
         path = out_dir / f"{key}_{kind}.ome.tif"
-        with atomic_open(path) as fh:
+        with atomic.open_atomic(path) as fh:
             tifffile.imwrite(
                 fh, pages(), shape=shape, dtype=dtype, ome=True, photometric="minisblack",
                 metadata=metadata, software="phasewatch",

@@ -1,8 +1,8 @@
 """Writing frames so that a power cut never leaves a damaged or half-indexed one.
 
-Order of operations for every frame: encode the whole OME-TIFF in memory, write it under a
-temporary name beside its final name, flush and fsync it, rename it into place, fsync the
-folder (so the rename itself is on disk), and only then commit its index row. A crash at
+Order of operations for every frame: encode the whole OME-TIFF in memory, write it
+through :mod:`drivers.atomic` (temporary name beside the final one, fsync, rename into
+place, fsync the folder), and only then commit its index row. A crash at
 any point leaves either a leftover temporary (removed on start-up), or a complete file
 that is not yet indexed (indexed again on start-up from its own metadata), or a complete
 indexed frame. Never an indexed frame without its complete file.
@@ -10,77 +10,25 @@ indexed frame. Never an indexed frame without its complete file.
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-import os
 import zlib
-from collections.abc import Iterator
 from pathlib import Path
-from typing import IO, Any, BinaryIO
+from typing import BinaryIO
 
 import numpy as np
 
 from daemon.storage.index import DuplicateFrame, Index
 from daemon.storage.ome import FrameMeta, encode_frame
-
-PARTIAL_SUFFIX = ".partial"
+from drivers import atomic
 
 
 class StorageWriteError(OSError):
     """A frame could not be written (disk full, I/O error); no partial file was left."""
 
 
-def fsync_dir(folder: Path) -> None:
-    fd = os.open(folder, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
-def make_dirs(folder: Path) -> None:
-    """``mkdir -p`` that also syncs each new folder's parent, so new entries survive a cut."""
-    missing: list[Path] = []
-    p = folder
-    while not p.exists():
-        missing.append(p)
-        p = p.parent
-    for d in reversed(missing):
-        d.mkdir(exist_ok=True)
-        fsync_dir(d.parent)
-
-
 def _write_all(fh: BinaryIO, data: bytes | memoryview) -> None:
     # Its own function so that tests can make the disk "fill up" in the middle of a frame.
     fh.write(data)
-
-
-def partial_name(path: Path) -> Path:
-    return path.with_name(f".{path.name}{PARTIAL_SUFFIX}")
-
-
-@contextlib.contextmanager
-def atomic_open(path: Path, mode: str = "wb", **kwargs: Any) -> Iterator[IO[Any]]:
-    """Open a temporary beside ``path``; on a clean exit flush, fsync, rename into place and
-    fsync the folder. On any error the temporary is removed and nothing appears at ``path``."""
-    tmp = partial_name(path)
-    try:
-        with open(tmp, mode, **kwargs) as fh:
-            yield fh
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
-    fsync_dir(path.parent)
-
-
-def write_atomic(path: Path, data: bytes | memoryview) -> None:
-    """Put ``data`` at ``path`` all or nothing (see :func:`atomic_open`)."""
-    with atomic_open(path) as fh:
-        _write_all(fh, data)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -116,8 +64,9 @@ class FrameStore:
         data = encode_frame(pixels, meta)
         path = self.data_dir / rel
         try:
-            make_dirs(path.parent)
-            write_atomic(path, data)
+            atomic.make_dirs(path.parent)
+            with atomic.open_atomic(path) as fh:
+                _write_all(fh, data)
         except OSError as exc:
             raise StorageWriteError(
                 exc.errno, f"cannot write frame {rel}: {exc.strerror or exc}; nothing partial was left"

@@ -21,14 +21,24 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+from daemon.states import (
+    POSTED_REQUESTS,
+    UNFINISHED_STATES,
+    FrameState,
+    PositionState,
+    TimelapseState,
+    TimePointState,
+    values,
+)
 from daemon.storage.ome import FrameMeta
 
 INDEX_FILE = "index.sqlite"
 SCHEMA_VERSION = 1
 
-TIMELAPSE_STATES = ("running", "paused", "completed", "aborted", "stopped")
-UNFINISHED_STATES = ("running", "paused")
-TIME_POINT_STATES = ("running", "done", "partial", "missed", "failed")
+TIMELAPSE_STATES = values(TimelapseState)
+TIME_POINT_STATES = values(TimePointState)
+_POSITION_STATES = values(PositionState)
+_FRAME_STATES = values(FrameState)
 
 _SCHEMA = f"""
 CREATE TABLE IF NOT EXISTS timelapses (
@@ -70,7 +80,7 @@ CREATE TABLE IF NOT EXISTS positions (
     key TEXT NOT NULL,
     well TEXT NOT NULL,
     site INTEGER NOT NULL,
-    status TEXT NOT NULL CHECK (status IN ('ok', 'failed', 'skipped')),
+    status TEXT NOT NULL CHECK (status IN {_POSITION_STATES!r}),
     reason TEXT,
     t_s REAL,
     focus_json TEXT,
@@ -102,7 +112,7 @@ CREATE TABLE IF NOT EXISTS frames (
     focus_score REAL,
     confluence REAL,
     focus_found INTEGER,
-    status TEXT NOT NULL DEFAULT 'ok' CHECK (status IN ('ok', 'missing', 'damaged')),
+    status TEXT NOT NULL DEFAULT '{FrameState.OK}' CHECK (status IN {_FRAME_STATES!r}),
     reindexed INTEGER NOT NULL DEFAULT 0,
     UNIQUE (timelapse_id, tp, key, z_index, kind)
 );
@@ -198,9 +208,9 @@ class Index:
             cur = c.execute(
                 "INSERT INTO timelapses (name, folder, plan_json, profile_path, profile_name, created_s,"
                 " t0_s, interval_s, count, n_positions, reserve_mb, state)"
-                " VALUES (?, '', ?, ?, ?, ?, ?, ?, ?, ?, ?, 'running')",
+                " VALUES (?, '', ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (name, json.dumps(plan), profile_path, profile_name, created_s, t0_s, interval_s, count,
-                 n_positions, reserve_mb),
+                 n_positions, reserve_mb, TimelapseState.RUNNING),
             )
             tl_id = int(cur.lastrowid)  # type: ignore[arg-type]
             c.execute("UPDATE timelapses SET folder = ? WHERE id = ?", (f"timelapses/{tl_id:04d}-{slug(name)}", tl_id))
@@ -231,11 +241,11 @@ class Index:
 
     def unfinished(self) -> list[dict[str, Any]]:
         return self._all(
-            f"SELECT * FROM timelapses WHERE state IN {UNFINISHED_STATES!r} ORDER BY id"
+            f"SELECT * FROM timelapses WHERE state IN {values(UNFINISHED_STATES)!r} ORDER BY id"
         )
 
     def set_state(
-        self, tl_id: int, state: str, *, reason: str | None = None, finished_s: float | None = None
+        self, tl_id: int, state: TimelapseState | str, *, reason: str | None = None, finished_s: float | None = None
     ) -> None:
         if state not in TIMELAPSE_STATES:
             raise ValueError(f"state must be one of {TIMELAPSE_STATES}, got {state!r}")
@@ -271,8 +281,8 @@ class Index:
 
     def post_request(self, tl_id: int, request: str) -> None:
         """Ask the process running a time-lapse to pause, resume or abort it."""
-        if request not in ("pause", "resume", "abort"):
-            raise ValueError(f"request must be pause, resume or abort, got {request!r}")
+        if request not in POSTED_REQUESTS:
+            raise ValueError(f"request must be one of {values(POSTED_REQUESTS)}, got {request!r}")
         with self._tx() as c:
             c.execute("UPDATE timelapses SET request = ? WHERE id = ?", (request, tl_id))
 
@@ -296,21 +306,20 @@ class Index:
         with self._tx() as c:
             c.execute(
                 "INSERT INTO time_points (timelapse_id, tp, planned_s, started_s, status)"
-                " VALUES (?, ?, ?, ?, 'running')"
-                " ON CONFLICT (timelapse_id, tp) DO UPDATE SET status = 'running'",
-                (tl_id, tp, planned_s, started_s),
+                " VALUES (?, ?, ?, ?, ?)"
+                " ON CONFLICT (timelapse_id, tp) DO UPDATE SET status = excluded.status",
+                (tl_id, tp, planned_s, started_s, TimePointState.RUNNING),
             )
 
     def finish_time_point(
-        self, tl_id: int, tp: int, *, status: str, finished_s: float, reason: str | None = None
+        self, tl_id: int, tp: int, *, status: TimePointState | str, finished_s: float, reason: str | None = None
     ) -> dict[str, Any]:
         if status not in TIME_POINT_STATES:
             raise ValueError(f"status must be one of {TIME_POINT_STATES}, got {status!r}")
         with self._tx() as c:
             counts = c.execute(
-                "SELECT SUM(status = 'ok'), SUM(status = 'failed') FROM positions"
-                " WHERE timelapse_id = ? AND tp = ?",
-                (tl_id, tp),
+                "SELECT SUM(status = ?), SUM(status = ?) FROM positions WHERE timelapse_id = ? AND tp = ?",
+                (PositionState.OK, PositionState.FAILED, tl_id, tp),
             ).fetchone()
             c.execute(
                 "UPDATE time_points SET status = ?, finished_s = ?, reason = ?, n_ok = ?, n_failed = ?"
@@ -328,8 +337,8 @@ class Index:
         with self._tx() as c:
             c.executemany(
                 "INSERT INTO time_points (timelapse_id, tp, planned_s, status, reason)"
-                " VALUES (?, ?, ?, 'missed', ?) ON CONFLICT (timelapse_id, tp) DO NOTHING",
-                [(tl_id, tp, planned_s, reason) for tp, planned_s in missed],
+                " VALUES (?, ?, ?, ?, ?) ON CONFLICT (timelapse_id, tp) DO NOTHING",
+                [(tl_id, tp, planned_s, TimePointState.MISSED, reason) for tp, planned_s in missed],
             )
 
     def time_points(self, tl_id: int) -> list[dict[str, Any]]:
@@ -348,7 +357,7 @@ class Index:
         key: str,
         well: str,
         site: int,
-        status: str,
+        status: PositionState | str,
         reason: str | None = None,
         t_s: float | None = None,
         focus: dict[str, Any] | None = None,
@@ -420,11 +429,13 @@ class Index:
     def frames_awaiting_analysis(self, tl_id: int, z_index: int) -> list[dict[str, Any]]:
         """Frames of the analysed plane still without confluence (analysis cut off by a restart)."""
         return self._all(
-            "SELECT * FROM frames WHERE timelapse_id = ? AND z_index = ? AND confluence IS NULL AND status = 'ok'"
-            " ORDER BY tp, key, kind", (tl_id, z_index),
+            "SELECT * FROM frames WHERE timelapse_id = ? AND z_index = ? AND confluence IS NULL AND status = ?"
+            " ORDER BY tp, key, kind", (tl_id, z_index, FrameState.OK),
         )
 
-    def set_frame_status(self, frame_id: int, status: str) -> None:
+    def set_frame_status(self, frame_id: int, status: FrameState | str) -> None:
+        if status not in _FRAME_STATES:
+            raise ValueError(f"status must be one of {_FRAME_STATES}, got {status!r}")
         with self._tx() as c:
             c.execute("UPDATE frames SET status = ? WHERE id = ?", (status, frame_id))
 

@@ -21,9 +21,11 @@ import zlib
 from collections.abc import Callable
 from pathlib import Path
 
-from daemon.storage.frames import PARTIAL_SUFFIX, frame_relpath, make_dirs
+from daemon.states import FrameState
+from daemon.storage.frames import frame_relpath
 from daemon.storage.index import Index
 from daemon.storage.ome import NotOurFrame, read_frame
+from drivers import atomic
 
 VERIFY_MODES = ("all", "recent", "size")
 
@@ -68,8 +70,8 @@ def _crc_of_file(path: Path) -> int:
 
 def _quarantine(data_dir: Path, rel: str) -> None:
     target = data_dir / "quarantine" / rel
-    make_dirs(target.parent)
-    os.replace(data_dir / rel, target)
+    atomic.make_dirs(target.parent)
+    atomic.move(data_dir / rel, target)
 
 
 def reconcile(
@@ -92,7 +94,7 @@ def reconcile(
             for name in files:
                 path = Path(folder) / name
                 rel = path.relative_to(data_dir).as_posix()
-                if name.endswith(PARTIAL_SUFFIX):
+                if name.endswith(atomic.TEMP_SUFFIX):
                     path.unlink()
                     report.removed_partials.append(rel)
                 elif name.endswith(".tif"):
@@ -108,22 +110,22 @@ def reconcile(
         indexed.add(rel)
         report.verified += 1
         path = data_dir / rel
-        status = "ok"
+        status = FrameState.OK
         if rel not in on_disk:
-            status = "missing"
+            status = FrameState.MISSING
         elif path.stat().st_size != row["bytes"]:
-            status = "damaged"
+            status = FrameState.DAMAGED
         elif verify == "all" or (verify == "recent" and row["tp"] == latest_tp[row["timelapse_id"]]):
             report.checksummed += 1
             if _crc_of_file(path) != row["crc32"]:
-                status = "damaged"
-        if status == "missing":
+                status = FrameState.DAMAGED
+        if status == FrameState.MISSING:
             report.missing.append(rel)
-        elif status == "damaged":
+        elif status == FrameState.DAMAGED:
             report.damaged.append(rel)
         if status != row["status"]:
             index.set_frame_status(row["id"], status)
-            if status != "ok":
+            if status != FrameState.OK:
                 index.add_alert(
                     row["timelapse_id"], t_s=now(), level="error", kind="storage",
                     message=f"indexed frame {rel} is {status}",

@@ -107,6 +107,18 @@ class Plan:
     def frames_per_position(self) -> int:
         return self.z_stack.count if self.z_stack else 1
 
+    def planes_um(self, focus_z_um: float) -> list[float]:
+        """The planes imaged at a position: the focal plane, or a z-stack centred on it, bottom up."""
+        if self.z_stack is None:
+            return [focus_z_um]
+        n, step = self.z_stack.count, self.z_stack.step_um
+        return [focus_z_um + (i - (n - 1) / 2.0) * step for i in range(n)]
+
+    @property
+    def analysis_plane(self) -> int:
+        """Index of the plane analysed for confluence: the focal plane (or the one just above it)."""
+        return (self.z_stack.count // 2) if self.z_stack else 0
+
     def get_vessel(self) -> Vessel:
         return get_vessel(self.vessel, Path(self.vessel_file) if self.vessel_file else None)
 

@@ -16,12 +16,13 @@ from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from daemon.states import UNFINISHED_STATES, TimelapseState
 from daemon.storage.index import Index, open_index
 from daemon.storage.reconcile import ReconcileReport, reconcile
 
 if TYPE_CHECKING:
+    from daemon.events import Event
     from daemon.scope import Scope
-    from daemon.timelapse.events import Event
     from daemon.timelapse.scheduler import Scheduler
 
 LOCK_FILE = "acquisition.lock"
@@ -36,6 +37,9 @@ def run_lock(data_dir: Path) -> Iterator[None]:
     """Hold the data folder's acquisition lock, or raise :class:`FolderBusy` naming the holder."""
     data_dir.mkdir(parents=True, exist_ok=True)
     path = data_dir / LOCK_FILE
+    # Opened and written in place, not through drivers.atomic: the lock is held on this
+    # very file, and a rename would put another one in its place. Its content (the
+    # holder's pid) is only a hint for the message below.
     fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
     try:
         try:
@@ -86,7 +90,7 @@ def pick_unfinished(index: Index, timelapse_id: int | None = None) -> dict[str, 
     unfinished = index.unfinished()
     if timelapse_id is not None:
         row = index.require_timelapse(timelapse_id)
-        if row["state"] not in ("running", "paused"):
+        if row["state"] not in UNFINISHED_STATES:
             raise OSError(f"time-lapse {timelapse_id} is {row['state']}; nothing to resume")
         return row
     return unfinished[-1] if unfinished else None
@@ -104,9 +108,9 @@ def resume_scheduler(
     """A scheduler that goes on with ``row``'s time-lapse; ``unpause`` lifts a pause too."""
     from daemon.timelapse.scheduler import MISSED_PAUSED, Scheduler
 
-    if unpause and row["state"] == "paused":
-        index.set_state(row["id"], "running", reason="resumed by request")
+    if unpause and row["state"] == TimelapseState.PAUSED:
+        index.set_state(row["id"], TimelapseState.RUNNING, reason="resumed by request")
     scheduler = Scheduler.resume(scope, data_dir, index, row["id"], on_event=on_event)
-    if unpause and row["state"] == "paused":
+    if unpause and row["state"] == TimelapseState.PAUSED:
         scheduler.set_miss_reason(MISSED_PAUSED)
     return scheduler

@@ -6,8 +6,10 @@
 * Each time point holds the hardware (``scope.claim``) and visits every position: move,
   focus (tracking, first time point only, or off), expose (z-stack optional), then
   correct, score, write and index every frame (:mod:`daemon.timelapse.processing`) in a
-  worker thread. Confluence of the analysed plane is worked out by a background task
-  while the scope moves on, and feeds the culture watch at the end of the time point.
+  worker thread. Where to focus is the plan's focus policy (:mod:`daemon.timelapse.focusing`).
+  Confluence of the analysed plane is worked out by a background task while the scope
+  moves on, and feeds the culture watch at the end of the time point
+  (:mod:`daemon.timelapse.analysis`).
 * A hardware fault at one position (controller reset, camera unplugged) is recorded for
   that position with its reason; the scope is brought back and the next position runs.
 * A storage failure (disk full, I/O error) or the free-space reserve being reached stops
@@ -28,21 +30,30 @@ import dataclasses
 import json
 import logging
 import sqlite3
-import statistics
 from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
+from daemon import events as ev
+from daemon.events import Event
+from daemon.states import (
+    STOP_REQUESTS,
+    UNFINISHED_STATES,
+    PositionState,
+    Request,
+    TimelapseState,
+    TimePointState,
+)
 from daemon.storage.frames import FrameStore
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB, SpaceGuard, frame_bytes_estimate
 from daemon.timelapse import timing
-from daemon.timelapse.events import Event
+from daemon.timelapse.analysis import AnalysisJob, ConfluenceWorker, confluence_function, watch_time_point
+from daemon.timelapse.focusing import FocusPolicy
 from daemon.timelapse.plan import Plan, PlannedPosition
 from daemon.timelapse.processing import FrameProcessor, PositionFrames, SavedPosition
 from daemon.timelapse.recovery import recover
+from daemon.timelapse.summary import RunningSummary
 from drivers.base import Frame, HardwareError, Position
 
 if TYPE_CHECKING:
@@ -53,30 +64,13 @@ log = logging.getLogger(__name__)
 
 # Real seconds between looks for pause/abort requests from other processes while waiting.
 POLL_REAL_S = 0.2
-# Analysed planes waiting for confluence; beyond this the position loop waits for the
-# analysis to catch up, so frames never pile up in memory.
-ANALYSIS_BACKLOG = 8
 MISSED_DOWN = "the daemon was not running"
 MISSED_OVERRUN = "the previous time point ran into this one's slot"
 MISSED_PAUSED = "the time-lapse was paused"
-STOP_REQUESTS = ("pause", "abort", "shutdown")
-# Cold focus searches per time point while no plane is known yet: enough to get past an
-# empty well or a bubble, few enough that a dead lamp does not cost a search at every
-# position.
-FIRST_FIND_TRIES = 2
 
 
 class StorageStop(Exception):
     """Raised inside a time point when storage can take no more frames."""
-
-
-@dataclasses.dataclass
-class _AnalysisJob:
-    k: int
-    key: str
-    frame_ids: list[int]
-    image: np.ndarray | None  # None: read it back from ``path``
-    path: str = ""
 
 
 def positions_to_dicts(positions: list[PlannedPosition]) -> list[dict[str, Any]]:
@@ -85,19 +79,6 @@ def positions_to_dicts(positions: list[PlannedPosition]) -> list[dict[str, Any]]
 
 def positions_from_dicts(items: list[dict[str, Any]]) -> list[PlannedPosition]:
     return [PlannedPosition(**d) for d in items]
-
-
-def z_planes_um(focus_z_um: float, plan: Plan) -> list[float]:
-    """The planes imaged at a position: the focal plane, or a z-stack centred on it, bottom up."""
-    if plan.z_stack is None:
-        return [focus_z_um]
-    n, step = plan.z_stack.count, plan.z_stack.step_um
-    return [focus_z_um + (i - (n - 1) / 2.0) * step for i in range(n)]
-
-
-def analysis_plane(plan: Plan) -> int:
-    """Index of the plane analysed for confluence: the focal plane (or the one just above it)."""
-    return (plan.z_stack.count // 2) if plan.z_stack else 0
 
 
 class Scheduler:
@@ -115,7 +96,6 @@ class Scheduler:
         resumed: bool = False,
     ) -> None:
         from daemon.culture.alerts import CultureWatch
-        from daemon.focus.tracking import FocusTracker
 
         row = index.require_timelapse(timelapse_id)
         self.scope = scope
@@ -129,30 +109,29 @@ class Scheduler:
         self.t0_s: float = row["t0_s"]
         self.interval_s: float = row["interval_s"]
         self.count: int = row["count"]
-        self.state: str = row["state"]
+        self.state = TimelapseState(row["state"])
         self.on_event = on_event
         self.store = FrameStore(data_dir, index)
         self.guard = space_guard or SpaceGuard(data_dir, row["reserve_mb"])
         saved = index.resume_state(timelapse_id)
-        self.tracker = (
-            FocusTracker.from_dict(self.profile, saved["tracker"]) if saved.get("tracker") else FocusTracker(self.profile)
-        )
+        self.focusing = FocusPolicy.from_saved(self.profile, self.plan.autofocus, saved)
         self.watch = CultureWatch.from_dict(saved["watch"]) if saved.get("watch") else CultureWatch()
-        self.first_focus: dict[str, Any] = saved.get("first_focus") or {"planes": {}, "fixed_z_um": None}
         cam = self.profile.camera
         self.exposure_ms = self.plan.exposure_ms if self.plan.exposure_ms is not None else cam.exposure_ms
         self.gain_db = self.plan.gain_db if self.plan.gain_db is not None else cam.gain_db
-        self.analysis_plane = analysis_plane(self.plan)
         self.processor: FrameProcessor | None = None
-        self.software_s: list[float] = []  # critical-path software time of each position saved
-        self._confluence: Callable[..., Any] | None = None
-        self._analysis: asyncio.Queue[_AnalysisJob] = asyncio.Queue(maxsize=ANALYSIS_BACKLOG)
-        self._request: str | None = None
+        # Critical-path software time of each position saved (s): a bounded record, the run lasts days.
+        self.software_s = RunningSummary()
+        self.analysis = ConfluenceWorker(
+            index, timelapse_id, data_dir, pixel_size_um=self.profile.optics.pixel_size_um,
+            analysis_plane=self.plan.analysis_plane, publish=self._publish, alert=self._alert,
+            measure=confluence_function(),
+        )
+        self._request: str | None = None  # a Request, or what another process posted
         self._shutdown = False
         self._wake = asyncio.Event()
         self._miss_reason = MISSED_DOWN if resumed else MISSED_OVERRUN
         self._next_k, self._open_k = self._progress_from_index()
-        self._first_finds: dict[int, int] = {}
 
     # -- construction ------------------------------------------------------------------
 
@@ -213,30 +192,30 @@ class Scheduler:
     def _progress_from_index(self) -> tuple[int, int | None]:
         """(first time point not yet recorded, time point left running by a crash or pause)."""
         points = self.index.time_points(self.id)
-        open_k = next((p["tp"] for p in points if p["status"] == "running"), None)
+        open_k = next((p["tp"] for p in points if p["status"] == TimePointState.RUNNING), None)
         next_k = max((p["tp"] for p in points), default=-1) + 1
         return next_k, open_k
 
     # -- control -----------------------------------------------------------------------
 
     def pause(self) -> None:
-        self._ask("pause")
+        self._ask(Request.PAUSE)
 
     def resume_running(self) -> None:
-        self._ask("resume")
+        self._ask(Request.RESUME)
 
     def abort(self) -> None:
-        self._ask("abort")
+        self._ask(Request.ABORT)
 
     def shutdown(self) -> None:
         """Stop in this process but leave the time-lapse unfinished, to be resumed later."""
-        self._ask("shutdown")
+        self._ask(Request.SHUTDOWN)
 
     def set_miss_reason(self, reason: str) -> None:
         """Why time points due before the next run were not run (recorded with them)."""
         self._miss_reason = reason
 
-    def _ask(self, request: str) -> None:
+    def _ask(self, request: Request) -> None:
         self._request = request
         self._wake.set()
 
@@ -244,15 +223,15 @@ class Scheduler:
         external = await asyncio.to_thread(self.index.take_request, self.id)
         request = self._request or external
         self._request = None
-        if request == "pause" and self.state == "running":
-            await self._set_state("paused", "paused by request")
-        elif request == "resume" and self.state == "paused":
+        if request == Request.PAUSE and self.state == TimelapseState.RUNNING:
+            await self._set_state(TimelapseState.PAUSED, "paused by request")
+        elif request == Request.RESUME and self.state == TimelapseState.PAUSED:
             self._miss_reason = MISSED_PAUSED
-            await self._set_state("running")
-        elif request == "abort":
+            await self._set_state(TimelapseState.RUNNING)
+        elif request == Request.ABORT:
             await self._close_open_time_point("aborted")
-            await self._set_state("aborted", "aborted by request", finished=True)
-        elif request == "shutdown":
+            await self._set_state(TimelapseState.ABORTED, "aborted by request", finished=True)
+        elif request == Request.SHUTDOWN:
             self._shutdown = True
 
     async def _interrupted(self) -> bool:
@@ -267,9 +246,9 @@ class Scheduler:
 
     # -- events ------------------------------------------------------------------------
 
-    def _emit(self, event_type: str, /, **fields: Any) -> None:
+    def _publish(self, event: Event) -> None:
         if self.on_event is not None:
-            self.on_event({"type": event_type, "timelapse_id": self.id, **fields})
+            self.on_event(event)
 
     async def _alert(self, level: str, kind: str, message: str) -> None:
         now = self.scope.clock.now()
@@ -280,36 +259,32 @@ class Scheduler:
         except (OSError, sqlite3.DatabaseError):
             # The index itself may be what ran out of space: the alert still goes out.
             alert = {"timelapse_id": self.id, "t_s": now, "level": level, "kind": kind, "message": message}
-        self._emit("alert", **{k: v for k, v in alert.items() if k != "timelapse_id"})
+        self._publish(ev.AlertEvent(type="alert", **alert))
 
-    async def _set_state(self, state: str, reason: str | None = None, *, finished: bool = False) -> None:
+    async def _set_state(self, state: TimelapseState, reason: str | None = None, *, finished: bool = False) -> None:
         self.state = state
         finished_s = self.scope.clock.now() if finished else None
         with contextlib.suppress(OSError, sqlite3.DatabaseError):
             await asyncio.to_thread(self.index.set_state, self.id, state, reason=reason, finished_s=finished_s)
-        self._emit("state", state=state, reason=reason)
+        self._publish(ev.StateEvent(type="state", timelapse_id=self.id, state=state, reason=reason))
 
     # -- the main loop -----------------------------------------------------------------
 
-    async def run(self) -> str:
+    async def run(self) -> TimelapseState:
         """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
         await self._prepare()
-        worker = asyncio.create_task(self._analysis_worker(), name=f"time-lapse {self.id} analysis")
         try:
-            await self._queue_unanalysed()
-            while self.state in ("running", "paused") and not self._shutdown:
-                await self._take_requests()
-                if self._shutdown or self.state not in ("running", "paused"):
-                    break
-                if self.state == "paused":
-                    await self._idle(POLL_REAL_S)
-                    continue
-                await self._step()
-            await self._drain_analysis()
+            async with self.analysis.running():
+                while self.state in UNFINISHED_STATES and not self._shutdown:
+                    await self._take_requests()
+                    if self._shutdown or self.state not in UNFINISHED_STATES:
+                        break
+                    if self.state == TimelapseState.PAUSED:
+                        await self._idle(POLL_REAL_S)
+                        continue
+                    await self._step()
+                await self.analysis.drain()
         finally:
-            worker.cancel()
-            with contextlib.suppress(asyncio.CancelledError):
-                await worker
             await self._save_resume_state(watch=True)
         return self.state
 
@@ -324,7 +299,7 @@ class Scheduler:
         if step.missed:
             await self._record_missed(step.missed)
         if step.action == "done":
-            await self._set_state("completed", finished=True)
+            await self._set_state(TimelapseState.COMPLETED, finished=True)
         elif step.action == "wait":
             await self._idle(min(POLL_REAL_S, max(0.0, step.at_s - now) / self.scope.clock.speed))
         else:
@@ -351,14 +326,8 @@ class Scheduler:
         self.processor = FrameProcessor(
             self.store, timelapse_id=self.id, timelapse_name=self.plan.name, t0_s=self.t0_s,
             pixel_size_um=self.profile.optics.pixel_size_um, objective=self.profile.optics.objective,
-            kinds=kinds, corrector=corrector, analysis_plane=self.analysis_plane,
+            kinds=kinds, corrector=corrector, analysis_plane=self.plan.analysis_plane,
         )
-        try:
-            from daemon.culture.confluence import confluence
-        except ImportError:
-            self._confluence = None  # culture analysis not installed: frames carry the focus score only
-        else:
-            self._confluence = confluence
         resumed = bool(await asyncio.to_thread(self.index.time_points, self.id))
         if not resumed:
             # Time point 0 is planned for when acquisition can really begin, not for when
@@ -366,11 +335,11 @@ class Scheduler:
             self.t0_s = self.scope.clock.now()
             await asyncio.to_thread(self.index.set_t0, self.id, self.t0_s)
             self.processor.t0_s = self.t0_s
-        self._emit(
-            "state", state=self.state, reason="resumed" if resumed else "started",
+        self._publish(ev.StateEvent(
+            type="state", timelapse_id=self.id, state=self.state, reason="resumed" if resumed else "started",
             name=self.plan.name, count=self.count, interval_s=self.interval_s,
             positions=len(self.positions), t0_s=self.t0_s,
-        )
+        ))
         if self.plan.correction and corrector is None:
             why = calibration.describe_missing(self.profile, self.exposure_ms, self.gain_db)
             await self._alert(
@@ -387,7 +356,10 @@ class Scheduler:
         await asyncio.to_thread(self.index.record_missed, self.id, items, self._miss_reason)
         self._next_k = max(self._next_k, missed[-1] + 1)
         for k, planned in items:
-            self._emit("time_point", tp=k, status="missed", planned_s=planned, reason=self._miss_reason)
+            self._publish(ev.TimePointEvent(
+                type="time_point", timelapse_id=self.id, tp=k, status=TimePointState.MISSED, planned_s=planned,
+                reason=self._miss_reason,
+            ))
         span = f"{missed[0]}" + (f"..{missed[-1]}" if len(missed) > 1 else "")
         await self._alert("warning", "missed", f"{len(missed)} time point(s) missed ({span}): {self._miss_reason}")
 
@@ -400,27 +372,33 @@ class Scheduler:
             if pos.key not in done:
                 await asyncio.to_thread(
                     self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
-                    status="skipped", reason=reason,
+                    status=PositionState.SKIPPED, reason=reason,
                 )
         await self._finish_time_point(k, forced_reason=reason)
 
     async def _finish_time_point(self, k: int, forced_reason: str | None = None) -> None:
         rows = await asyncio.to_thread(self.index.positions, self.id, k)
-        ok = sum(r["status"] == "ok" for r in rows)
-        status = "done" if ok == len(self.positions) else ("failed" if ok == 0 else "partial")
+        ok = sum(r["status"] == PositionState.OK for r in rows)
+        if ok == len(self.positions):
+            status = TimePointState.DONE
+        else:
+            status = TimePointState.FAILED if ok == 0 else TimePointState.PARTIAL
         reason = forced_reason
-        if reason is None and status != "done":
+        if reason is None and status != TimePointState.DONE:
             reason = f"{len(self.positions) - ok} of {len(self.positions)} positions not imaged"
         row = await asyncio.to_thread(
             self.index.finish_time_point, self.id, k, status=status, finished_s=self.scope.clock.now(), reason=reason
         )
         self._open_k = None
         self._next_k = max(self._next_k, k + 1)
-        await self._drain_analysis()
-        await self._update_culture_watch(k)
+        await self.analysis.drain()
+        await watch_time_point(self.index, self.id, self.watch, k, self._alert)
         await self._save_resume_state(watch=True)
-        fields = ("tp", "status", "planned_s", "started_s", "finished_s", "n_ok", "n_failed", "reason")
-        self._emit("time_point", **{key: row[key] for key in fields})
+        self._publish(ev.TimePointEvent(
+            type="time_point", timelapse_id=self.id, tp=row["tp"], status=row["status"], planned_s=row["planned_s"],
+            started_s=row["started_s"], finished_s=row["finished_s"], n_ok=row["n_ok"], n_failed=row["n_failed"],
+            reason=row["reason"],
+        ))
 
     # -- one time point ----------------------------------------------------------------
 
@@ -444,7 +422,10 @@ class Scheduler:
         self._open_k = k
         self._miss_reason = MISSED_OVERRUN
         late_s = started - planned
-        self._emit("time_point", tp=k, status="running", planned_s=planned, started_s=started, late_s=late_s)
+        self._publish(ev.TimePointEvent(
+            type="time_point", timelapse_id=self.id, tp=k, status=TimePointState.RUNNING, planned_s=planned,
+            started_s=started, late_s=late_s,
+        ))
         async with self.scope.claim(f"time-lapse {self.plan.name}"):
             if self.scope.last_position is None:
                 # Position unknown (not homed since connecting, or lost): nothing can move until homed.
@@ -453,10 +434,10 @@ class Scheduler:
             for i, pos in enumerate(todo):
                 if await self._interrupted():
                     return  # the time point stays open; a resume inside its slot completes it
-                self._emit(
-                    "progress", tp=k, count=self.count, position=pos.key, index=len(done) + i,
-                    positions=len(self.positions), late_s=round(late_s, 3),
-                )
+                self._publish(ev.ProgressEvent(
+                    type="progress", timelapse_id=self.id, tp=k, count=self.count, position=pos.key,
+                    index=len(done) + i, positions=len(self.positions), late_s=round(late_s, 3),
+                ))
                 try:
                     await self._image_position(k, pos)
                 except StorageStop as exc:
@@ -465,7 +446,7 @@ class Scheduler:
                 except Exception as exc:  # noqa: BLE001 - one position's bug must not end a days-long run
                     log.exception("time point %d, position %s", k, pos.key)
                     text = f"internal error: {type(exc).__name__}: {exc}"
-                    await self._record_position(k, pos, "failed", text)
+                    await self._record_position(k, pos, PositionState.FAILED, text)
                     await self._alert("error", "internal", f"time point {k}, position {pos.key}: {text}")
         await self._finish_time_point(k)
 
@@ -474,14 +455,14 @@ class Scheduler:
         if self._open_k is not None:
             with contextlib.suppress(OSError, sqlite3.DatabaseError):
                 await self._close_open_time_point(f"stopped: {why}")
-        await self._set_state("stopped", why, finished=True)
+        await self._set_state(TimelapseState.STOPPED, why, finished=True)
 
     async def _image_position(self, k: int, pos: PlannedPosition) -> None:
         done_planes = await asyncio.to_thread(self.index.frame_planes, self.id, k, pos.key)
         wanted = {(z, kind) for z in range(self.plan.frames_per_position) for kind in self.kinds}
         if wanted <= done_planes:
             # Saved in full before a restart; only its record was lost.
-            await self._record_position(k, pos, "ok", "frames were saved before the restart")
+            await self._record_position(k, pos, PositionState.OK, "frames were saved before the restart")
             return
         try:
             await self.scope.move_to(x_um=pos.x_um, y_um=pos.y_um)
@@ -496,24 +477,25 @@ class Scheduler:
             saved = await asyncio.to_thread(self.processor.save_position, data)
         except (OSError, sqlite3.DatabaseError) as exc:
             raise StorageStop(str(exc)) from exc
-        self.software_s.append(saved.software_s)
+        self.software_s.add(saved.software_s)
         reason = None if result is None or result.found else result.message
-        await self._record_position(k, pos, "ok", reason, focus=None if result is None else result.to_dict())
-        self._emit_frames(k, pos, saved)
-        if saved.analysis_frame_ids and self._confluence is not None:
-            await self._analysis.put(_AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
+        await self._record_position(k, pos, PositionState.OK, reason, focus=None if result is None else result.to_dict())
+        self._publish_frames(k, pos, saved)
+        if saved.analysis_frame_ids:
+            await self.analysis.submit(AnalysisJob(k, pos.key, saved.analysis_frame_ids, saved.analysis_image))
         await self._save_resume_state()
 
-    def _emit_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
+    def _publish_frames(self, k: int, pos: PlannedPosition, saved: SavedPosition) -> None:
         for meta, path, frame_id in saved.frames:
-            self._emit(
-                "frame", tp=k, position=pos.key, well=pos.well, site=pos.site, z_index=meta.z_index,
-                kind=meta.kind, path=path, frame_id=frame_id, t_s=meta.t_s, z_um=meta.z_um,
+            self._publish(ev.FrameEvent(
+                type="frame", timelapse_id=self.id, tp=k, position=pos.key, well=pos.well, site=pos.site,
+                z_index=meta.z_index, kind=meta.kind, path=path, frame_id=frame_id, t_s=meta.t_s, z_um=meta.z_um,
                 focus_score=meta.focus_score, focus_found=meta.focus_found,
-            )
+            ))
 
     async def _record_position(
-        self, k: int, pos: PlannedPosition, status: str, reason: str | None, focus: dict[str, Any] | None = None
+        self, k: int, pos: PlannedPosition, status: PositionState, reason: str | None,
+        focus: dict[str, Any] | None = None,
     ) -> None:
         await asyncio.to_thread(
             self.index.record_position, self.id, k, key=pos.key, well=pos.well, site=pos.site,
@@ -522,57 +504,30 @@ class Scheduler:
 
     async def _position_failed(self, k: int, pos: PlannedPosition, exc: HardwareError) -> None:
         reason = f"{type(exc).__name__}: {exc}"
-        await self._record_position(k, pos, "failed", reason)
+        await self._record_position(k, pos, PositionState.FAILED, reason)
         await self._alert("warning", "hardware", f"time point {k}, position {pos.key} failed: {exc}")
         try:
             what = await recover(self.scope, exc)
         except HardwareError as again:
             await self._alert("error", "hardware", f"scope not recovered after the fault at {pos.key}: {again}")
             return
-        self._emit("progress", tp=k, position=pos.key, recovered=what)
+        self._publish(ev.ProgressEvent(type="progress", timelapse_id=self.id, tp=k, position=pos.key, recovered=what))
 
     async def _focus(self, k: int, pos: PlannedPosition) -> tuple[float, FocusResult | None]:
-        """The plane to image at: tracked, remembered from the first time point, or fixed."""
-        policy = self.plan.autofocus
-        planes: dict[str, float] = self.first_focus["planes"]
-        if policy == "off":
-            if self.first_focus.get("fixed_z_um") is None:
-                # Focus off: every position is imaged in the plane the user left the focus at.
-                self.first_focus["fixed_z_um"] = (await self.scope.position()).z_um
-            return float(self.first_focus["fixed_z_um"]), None
-        if policy == "first" and pos.key in planes:
-            return float(planes[pos.key]), None
+        """The plane to image at, by the plan's focus policy; each focus frame goes out as an event."""
 
         def point(p: FocusPoint) -> None:
-            self._emit("focus_point", tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s)
+            self._publish(ev.FocusPointEvent(
+                type="focus_point", timelapse_id=self.id, tp=k, position=pos.key, z_um=p.z_um, score=p.score, t_s=p.t_s,
+            ))
 
-        nothing_known = not any(state.planes for state in self.tracker.keys.values())
-        if nothing_known and self._first_finds.get(k, 0) < FIRST_FIND_TRIES:
-            self._first_finds[k] = self._first_finds.get(k, 0) + 1
-            result = await self._first_find(pos, point)
-        else:
-            result = await self.tracker.focus(self.scope, pos.key, pos.x_um, pos.y_um, on_point=point)
-        if policy == "first" and result.found:
-            planes[pos.key] = result.z_um
-        return result.z_um, result
-
-    async def _first_find(self, pos: PlannedPosition, on_point: Callable[[FocusPoint], None]) -> FocusResult:
-        """Focus with nothing known yet: a cold search around the present focus, or around
-        the profile's ``[focus] nominal_z_um`` when the focus sits far from it (homing
-        leaves the objective at the bottom of its travel). After this the tracker's focus
-        surface predicts every other position.
-        """
-        from daemon.focus.autofocus import autofocus
-
-        result = await autofocus(self.scope, on_point=on_point)
-        result.message += " (first search of the time-lapse)"
-        return self.tracker.record(pos.key, pos.x_um, pos.y_um, result)
+        return await self.focusing.focus(self.scope, k, pos, point)
 
     async def _expose(
         self, focus_z_um: float, result: FocusResult | None, done_planes: set[tuple[int, str]]
     ) -> list[tuple[int, Frame, Position]]:
         frames: list[tuple[int, Frame, Position]] = []
-        planes = z_planes_um(focus_z_um, self.plan)
+        planes = self.plan.planes_um(focus_z_um)
         scope = self.scope
         for zi, z in enumerate(planes):
             if all((zi, kind) in done_planes for kind in self.kinds):
@@ -591,70 +546,8 @@ class Scheduler:
             frames.append((zi, frame, here))
         return frames
 
-    # -- confluence, in the background -------------------------------------------------
-
-    async def _queue_unanalysed(self) -> None:
-        """Analyse what a restart cut off: analysed-plane frames still without confluence."""
-        if self._confluence is None:
-            return
-        rows = await asyncio.to_thread(self.index.frames_awaiting_analysis, self.id, self.analysis_plane)
-        by_plane: dict[tuple[int, str], list[dict[str, Any]]] = {}
-        for r in rows:
-            by_plane.setdefault((r["tp"], r["key"]), []).append(r)
-        for (k, key), group in by_plane.items():
-            source = next((r for r in group if r["kind"] == "corrected"), group[0])
-            await self._analysis.put(_AnalysisJob(k, key, [r["id"] for r in group], None, source["path"]))
-
-    async def _analysis_worker(self) -> None:
-        import tifffile
-
-        while True:
-            job = await self._analysis.get()
-            try:
-                image = job.image
-                if image is None:
-                    image = await asyncio.to_thread(tifffile.imread, self.data_dir / job.path)
-                assert self._confluence is not None
-                result = await asyncio.to_thread(
-                    self._confluence, image, pixel_size_um=self.profile.optics.pixel_size_um
-                )
-                value = float(result.fraction)
-                await asyncio.to_thread(self.index.set_confluence, job.frame_ids, value)
-                self._emit("frame_analysis", tp=job.k, position=job.key, frame_ids=job.frame_ids, confluence=value)
-            except Exception as exc:  # noqa: BLE001 - a frame that cannot be analysed keeps its other metrics
-                log.exception("confluence of time point %d, position %s", job.k, job.key)
-                await self._alert("warning", "analysis", f"confluence of {job.key} at time point {job.k} failed: {exc}")
-            finally:
-                self._analysis.task_done()
-
-    async def _drain_analysis(self) -> None:
-        await self._analysis.join()
-
-    async def _update_culture_watch(self, k: int) -> None:
-        """Feed the well-level confluence of time point ``k`` to the culture watch."""
-        rows = await asyncio.to_thread(self.index.frames, self.id, k)
-        # One reading per site: its analysed plane (raw and corrected frames carry the same figures).
-        per_site: dict[str, dict[str, Any]] = {}
-        for f in rows:
-            best = per_site.get(f["key"])
-            if best is None or (best["confluence"] is None and f["confluence"] is not None):
-                per_site[f["key"]] = f
-        per_well: dict[str, list[dict[str, Any]]] = {}
-        for f in per_site.values():
-            if f["confluence"] is not None or f["focus_found"] is not None:
-                per_well.setdefault(f["well"], []).append(f)
-        for well, frames in per_well.items():
-            attempted = [f for f in frames if f["focus_found"] is not None]
-            focus_ok = not attempted or any(f["focus_found"] for f in attempted)
-            usable = [f["confluence"] for f in frames if f["confluence"] is not None and f["focus_found"] != 0]
-            value = statistics.fmean(usable) if usable else None
-            t_s = min(f["t_s"] for f in frames)
-            for alert in self.watch.update(well, t_s, value, focus_ok):
-                level = "info" if alert.kind == "confluence_reached" else "warning"
-                await self._alert(level, alert.kind, alert.message)
-
     async def _save_resume_state(self, *, watch: bool = False) -> None:
-        parts: dict[str, Any] = {"tracker": self.tracker.to_dict(), "first_focus": self.first_focus}
+        parts: dict[str, Any] = self.focusing.resume_state()
         if watch:
             parts["watch"] = self.watch.to_dict()
         with contextlib.suppress(OSError, sqlite3.DatabaseError):

@@ -13,13 +13,13 @@ import dataclasses
 import datetime as dt
 import json
 import math
-import os
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from skimage.transform import SimilarityTransform
 
+from drivers import atomic
 from drivers.options import ConfigError
 from daemon.vessels.geometry import (
     SLAS_LENGTH_MM,
@@ -256,16 +256,10 @@ def stage_map_path(data_dir: Path, profile: Profile) -> Path:
 
 
 def save_stage_map(data_dir: Path, profile: Profile, smap: StageMap) -> Path:
-    """Store atomically (temporary name, fsync, rename) so a power cut leaves the old or the new map."""
+    """Store atomically (:mod:`drivers.atomic`) so a power cut leaves the old or the new map."""
     path = stage_map_path(data_dir, profile)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump({"profile": profile.name, **smap.to_dict()}, fh, indent=2)
-        fh.write("\n")
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    atomic.make_dirs(path.parent)
+    atomic.write_text(path, json.dumps({"profile": profile.name, **smap.to_dict()}, indent=2) + "\n")
     return path
 
 

@@ -25,6 +25,7 @@ import tifffile
 from aiohttp import web
 
 from drivers.options import ConfigError
+from daemon.culture.readings import plot_series
 from daemon.illumination import CalibrationError
 from daemon.web import API_PREFIX
 from daemon.web.auth import VIEW_COOKIE, Authenticator
@@ -32,7 +33,7 @@ from daemon.web.checks import json_safe
 from daemon.web.errors import BadRequest, Busy, NotFound
 from daemon.web.keys import AUTH, METRICS, STATION
 from daemon.web.stream import BOUNDARY, DEFAULT_QUALITY, MIN_WIDTH_PX, to_8bit
-from daemon.web.views import latest_per_position, series_of
+from daemon.web.views import latest_per_position
 from drivers.base import HardwareError, LimitError
 
 log = logging.getLogger(__name__)
@@ -488,7 +489,7 @@ async def get_series(request: web.Request) -> web.Response:
 
     def build() -> dict[str, Any]:
         row = station.require_timelapse(tl_id)
-        return {"id": tl_id, "t0_s": row["t0_s"], **series_of(station.index.frames(tl_id), row["t0_s"])}
+        return {"id": tl_id, "t0_s": row["t0_s"], **plot_series(station.index, tl_id)}
 
     return json_response(await asyncio.to_thread(build))
 

@@ -11,7 +11,6 @@ sending wrong ones is locked out for a while.
 from __future__ import annotations
 
 import collections
-import contextlib
 import hashlib
 import hmac
 import os
@@ -21,6 +20,8 @@ import sys
 import time
 from collections.abc import Callable
 from pathlib import Path
+
+from drivers import atomic
 
 TOKEN_FILE = "access-token"
 TOKEN_BYTES = 32  # 256 bits from the OS's CSPRNG (secrets module)
@@ -40,17 +41,9 @@ def token_path(data_dir: Path) -> Path:
 
 def _write_new_token(path: Path) -> str:
     token = secrets.token_urlsafe(TOKEN_BYTES)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    # O_EXCL + mode 0600 at creation: the token is never readable by others, not even briefly.
-    with contextlib.suppress(FileNotFoundError):
-        tmp.unlink()  # left by a crash between create and rename
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    with os.fdopen(fd, "w", encoding="ascii") as fh:
-        fh.write(token + "\n")
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    atomic.make_dirs(path.parent)
+    # Mode 0600 from creation: the token is never readable by others, not even briefly.
+    atomic.write_text(path, token + "\n", encoding="ascii", permissions=0o600)
     return token
 
 

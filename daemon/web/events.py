@@ -4,7 +4,7 @@ Each message is one event: ``hello`` (the status when connecting), ``state`` and
 ``time_point`` and ``progress`` and ``frame`` and ``alert`` from the time-lapse,
 ``focus_start``/``focus_point``/``focus_result`` from an autofocus, ``stage`` after a
 manual move. A slow client loses its oldest events rather than slowing the scope down
-(:class:`daemon.timelapse.events.EventHub`).
+(:class:`daemon.events.EventHub`).
 """
 
 from __future__ import annotations

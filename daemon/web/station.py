@@ -29,7 +29,8 @@ from drivers.options import ConfigError
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.timelapse import timing
-from daemon.timelapse.events import Event, EventHub
+from daemon.events import Event, EventHub
+from daemon.states import UNFINISHED_STATES as UNFINISHED
 from daemon.web.checks import finite_number, only_keys
 from daemon.web.errors import BadRequest, Busy, NotFound
 from daemon.web.stream import LIVE_HOLDER, LiveView
@@ -51,7 +52,6 @@ LIVE_YIELD_S = 3.0
 REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
-UNFINISHED = ("running", "paused")
 
 
 def _position_dict(p: Position | None) -> dict[str, float] | None:

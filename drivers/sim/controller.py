@@ -60,6 +60,7 @@ import tty
 from pathlib import Path
 from typing import TYPE_CHECKING, Callable
 
+from drivers import atomic
 from drivers.base import Position
 from drivers.gcode.dialect import (
     REPRAP,
@@ -309,10 +310,7 @@ class GcodeEmulator:
         self._master_fd, self._slave_fd = master, slave
         self._device_path = os.ttyname(slave)
         assert self._link_path is not None
-        tmp = self._link_path.with_name(self._link_path.name + ".new")
-        tmp.unlink(missing_ok=True)
-        tmp.symlink_to(self._device_path)
-        os.replace(tmp, self._link_path)
+        atomic.symlink(self._link_path, self._device_path)
 
     def _close_pty(self) -> None:
         for fd in (self._master_fd, self._slave_fd):
