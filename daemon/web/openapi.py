@@ -25,6 +25,7 @@ from daemon.manual import MoveRequest
 from daemon.requests import default_of, has_default, request_fields
 from daemon.timelapse.plan import PlanOptions
 from daemon.web import API_PREFIX
+from drivers.options import INT_MAX, INT_MIN
 
 P = API_PREFIX
 
@@ -71,11 +72,15 @@ def _value_schema(tp: Any, meta: typing.Mapping[str, Any]) -> dict[str, Any]:
     schema: dict[str, Any] = {"type": _SCALARS[tp]}
     if meta.get("choices"):
         schema["enum"] = [_json_value(c) for c in meta["choices"]]
+    lo, hi = meta.get("min"), meta.get("max")
+    if tp is int:
+        # Whole numbers are 64-bit, as in a profile (drivers.options refuses larger ones).
+        lo, hi = INT_MIN if lo is None else lo, INT_MAX if hi is None else hi
     if tp in (int, float):
-        if meta.get("min") is not None:
-            schema["minimum"] = meta["min"]
-        if meta.get("max") is not None:
-            schema["maximum"] = meta["max"]
+        if lo is not None:
+            schema["minimum"] = lo
+        if hi is not None:
+            schema["maximum"] = hi
     return schema
 
 
