@@ -61,7 +61,8 @@ def parse_text_request(cls: type[T], texts: Mapping[str, str | list[str]]) -> T:
     return parse_request(cls, table)
 
 
-def _alternatives(tp: Any) -> tuple[Any, ...]:
+def alternatives(tp: Any) -> tuple[Any, ...]:
+    """The types a field may hold, ``None`` left out (it only ever means "not given")."""
     if typing.get_origin(tp) in (typing.Union, types.UnionType):
         return tuple(a for a in typing.get_args(tp) if a is not type(None))
     return (tp,)
@@ -70,10 +71,10 @@ def _alternatives(tp: Any) -> tuple[Any, ...]:
 def _from_text(text: str | list[str], tp: Any) -> Any:
     if isinstance(text, list):
         inner = next(
-            (typing.get_args(a)[0] for a in _alternatives(tp) if typing.get_origin(a) in (list, tuple)), str
+            (typing.get_args(a)[0] for a in alternatives(tp) if typing.get_origin(a) in (list, tuple)), str
         )
         return [_from_text(t, inner) for t in text]
-    for kind in _alternatives(tp):
+    for kind in alternatives(tp):
         if kind is bool and text.lower() in ("true", "false"):
             return text.lower() == "true"
         if kind is int and _WHOLE.fullmatch(text.strip()):

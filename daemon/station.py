@@ -38,7 +38,7 @@ from typing import TYPE_CHECKING, Any
 
 from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
 from daemon.errors import Busy
-from daemon.focus.autofocus import AutofocusRequest, FocusPoint, FocusResult, autofocus_as_asked, check_search
+from daemon.focus.autofocus import AutofocusRequest, FocusPoint, FocusResult, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
 from daemon.live import LIVE_HOLDER, LiveView
@@ -344,9 +344,7 @@ class Station:
 
     async def autofocus(self, request: AutofocusRequest) -> FocusDone:
         """One cold autofocus here; its focus points stream as events while it runs."""
-        # Refused before the scope is claimed or any event is sent (autofocus checks again).
-        check_search(self.profile, metric=request.metric, centre_z_um=request.centre_z_um,
-                     range_um=request.range_um, roi=request.roi_px)
+        request.check(self.profile)  # before the scope is claimed or any event sent (autofocus checks again)
         run_id = int(time.time() * 1000)
 
         def point(p: FocusPoint) -> None:

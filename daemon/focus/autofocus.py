@@ -104,6 +104,10 @@ class AutofocusRequest:
             f"at least {MIN_ROI_PX} x {MIN_ROI_PX} (default: the whole frame)",
     )
 
+    def check(self, profile: Profile) -> None:
+        """:func:`check_search` of this request: refused before the scope is opened or claimed."""
+        check_search(profile, metric=self.metric, centre_z_um=self.centre_z_um, range_um=self.range_um, roi=self.roi_px)
+
 
 @dataclasses.dataclass(slots=True)
 class FocusPoint:
