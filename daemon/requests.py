@@ -77,8 +77,8 @@ def _from_text(text: str | list[str], tp: Any) -> Any:
     for kind in alternatives(tp):
         if kind is bool and text.lower() in ("true", "false"):
             return text.lower() == "true"
-        if kind is int and _WHOLE.fullmatch(text.strip()):
-            return int(text)
+        if kind in (int, float) and _WHOLE.fullmatch(text.strip()):
+            return int(text)  # as JSON would carry "60": the loader takes it for a number, and says "60" back
         if kind is float:
             try:
                 return float(text)
