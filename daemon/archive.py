@@ -13,6 +13,7 @@ file elsewhere.
 from __future__ import annotations
 
 import dataclasses
+import json
 import re
 from pathlib import Path
 from typing import Any
@@ -142,6 +143,30 @@ class Archive:
                 "missed": sum(p["status"] == "missed" for p in points), "stop_reason": row["stop_reason"],
             })
         return rows
+
+    def detail(self, tl_id: int) -> dict[str, Any]:
+        """One time-lapse as indexed: plan, time points (missed ones with why), failed
+        positions, alerts, and the latest frame of every position."""
+        row = self.timelapse(tl_id)
+        points = self.index.time_points(tl_id)
+        frames = self.index.frames(tl_id)
+        statuses = {st: sum(p["status"] == st for p in points) for st in ("done", "partial", "failed", "missed", "running")}
+        over = statuses["done"] + statuses["partial"] + statuses["failed"] + statuses["missed"]
+        spec = json.loads(row["plan_json"])
+        return {
+            "id": tl_id, "name": row["name"], "state": row["state"], "stop_reason": row["stop_reason"],
+            "profile": row["profile_name"], "t0_s": row["t0_s"], "created_s": row["created_s"],
+            "finished_s": row["finished_s"], "interval_s": row["interval_s"], "count": row["count"],
+            "positions": [p["key"] for p in spec.get("positions", [])], "plan": spec.get("plan"),
+            "time_points": statuses, "progress_ratio": over / row["count"] if row["count"] else 0.0,
+            "frames": len(frames), "frames_not_ok": sum(f["status"] != "ok" for f in frames),
+            "missed": [{"tp": p["tp"], "planned_s": p["planned_s"], "reason": p["reason"]}
+                       for p in points if p["status"] == "missed"],
+            "time_point_list": points[-200:],
+            "failed_positions": [p for p in self.index.positions(tl_id) if p["status"] != "ok"][-100:],
+            "alerts": self.index.alerts(tl_id)[-200:],
+            "latest": latest_per_position(frames),
+        }
 
     # -- frames --------------------------------------------------------------------------
 

@@ -11,7 +11,7 @@ may use the hardware when:
 * one time-lapse at a time per scope.
 
 Every operation takes a request dataclass (:mod:`daemon.requests`: parsed strictly by
-the profile loader's rules) and returns a typed result with ``to_json()``. The work
+the profile loader's rules) and returns a typed result (:mod:`daemon.results`). The work
 itself is done by the domain functions the command line calls too
 (:func:`daemon.manual.apply_move`, :func:`daemon.focus.autofocus.autofocus`,
 :func:`daemon.illumination.acquire.take_flat`, ...), which hold the checks that need the
@@ -27,8 +27,6 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import dataclasses
-import json
 import logging
 import math
 import time
@@ -38,11 +36,20 @@ from typing import TYPE_CHECKING, Any
 
 from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
 from daemon.errors import Busy
-from daemon.focus.autofocus import AutofocusRequest, FocusPoint, FocusResult, autofocus_as_asked
+from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
 from daemon.live import LIVE_HOLDER, LiveView
 from daemon.manual import MoveRequest, apply_move, resolve_move
+from daemon.results import (
+    CalibrationStored,
+    ControlDone,
+    FocusDone,
+    MoveDone,
+    PlanChecked,
+    TimelapseStarted,
+    position_json,
+)
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.timelapse import timing
@@ -67,93 +74,6 @@ REQUEST_WAIT_S = 10.0
 SHUTDOWN_WAIT_S = 20.0
 UNFINISHED = ("running", "paused")
 ACTIONS = {"pause": "paused", "resume": "running", "abort": "aborted"}
-
-
-def position_json(p: Position | None) -> dict[str, float] | None:
-    if p is None:
-        return None
-    return {"x_um": round(p.x_um, 3), "y_um": round(p.y_um, 3), "z_um": round(p.z_um, 3)}
-
-
-# -- results ---------------------------------------------------------------------------
-
-
-@dataclasses.dataclass(frozen=True)
-class MoveDone:
-    position: Position
-    well: str | None
-
-    def to_json(self) -> dict[str, Any]:
-        return {"position_um": position_json(self.position), "well": self.well}
-
-
-@dataclasses.dataclass(frozen=True)
-class FocusDone:
-    """An autofocus run from a manual request; ``run`` ties it to its streamed focus points."""
-
-    result: FocusResult
-    run: int
-    position: Position | None
-
-    def to_json(self) -> dict[str, Any]:
-        return {**self.result.to_dict(), "run": self.run, "position_um": position_json(self.position)}
-
-
-@dataclasses.dataclass(frozen=True)
-class CalibrationStored:
-    kind: str
-    file: str  # relative to the data folder
-    exposure_ms: float
-    gain_db: float
-    frames: int
-    quality: dict[str, Any] | None
-
-    def to_json(self) -> dict[str, Any]:
-        return dataclasses.asdict(self)
-
-
-@dataclasses.dataclass(frozen=True)
-class PlanChecked:
-    plan: Plan
-    positions: list[str]
-    warnings: list[str]
-    estimate: dict[str, Any]
-
-    def to_json(self) -> dict[str, Any]:
-        return {"plan": self.plan.to_dict(), "positions": self.positions, "warnings": self.warnings,
-                "estimate": self.estimate}
-
-
-@dataclasses.dataclass(frozen=True)
-class TimelapseStarted:
-    id: int
-    name: str
-    state: str
-    warnings: list[str]
-    estimate: dict[str, Any]
-
-    def to_json(self) -> dict[str, Any]:
-        return dataclasses.asdict(self)
-
-
-@dataclasses.dataclass(frozen=True)
-class ControlDone:
-    """A pause, resume or abort: ``done`` once it took effect, else requested (after the
-    position being imaged)."""
-
-    id: int
-    action: str
-    state: str
-    done: bool
-
-    @property
-    def message(self) -> str:
-        if self.done:
-            return f"time-lapse {self.id} is {self.state}"
-        return f"{self.action} requested; it takes effect after the position being imaged"
-
-    def to_json(self) -> dict[str, Any]:
-        return {"id": self.id, "state": self.state, "message": self.message}
 
 
 class Station:
@@ -508,30 +428,12 @@ class Station:
         return {"id": s.id, "name": s.plan.name, "state": s.state, "interval_s": s.interval_s, **self._progress_of(s)}
 
     def _detail(self, tl_id: int) -> dict[str, Any]:
-        row = self.archive.timelapse(tl_id)
-        points = self.index.time_points(tl_id)
-        frames = self.index.frames(tl_id)
-        statuses = {st: sum(p["status"] == st for p in points) for st in ("done", "partial", "failed", "missed", "running")}
-        over = statuses["done"] + statuses["partial"] + statuses["failed"] + statuses["missed"]
+        out = self.archive.detail(tl_id)
         s = self._running_here(tl_id)
-        spec = json.loads(row["plan_json"])
-        out = {
-            "id": tl_id, "name": row["name"], "state": s.state if s is not None else row["state"],
-            "stop_reason": row["stop_reason"],
-            "profile": row["profile_name"], "t0_s": row["t0_s"], "created_s": row["created_s"],
-            "finished_s": row["finished_s"], "interval_s": row["interval_s"], "count": row["count"],
-            "positions": [p["key"] for p in spec.get("positions", [])], "plan": spec.get("plan"),
-            "time_points": statuses, "progress_ratio": over / row["count"] if row["count"] else 0.0,
-            "frames": len(frames), "frames_not_ok": sum(f["status"] != "ok" for f in frames),
-            "missed": [{"tp": p["tp"], "planned_s": p["planned_s"], "reason": p["reason"]} for p in points if p["status"] == "missed"],
-            "time_point_list": points[-200:],
-            "failed_positions": [p for p in self.index.positions(tl_id) if p["status"] != "ok"][-100:],
-            "alerts": self.index.alerts(tl_id)[-200:],
-            "latest": self.archive.latest(tl_id),
-            "clock_s": self.scope.clock.now(),
-            "running_here": s is not None,
-        }
+        out["clock_s"] = self.scope.clock.now()
+        out["running_here"] = s is not None
         if s is not None:
+            out["state"] = s.state
             out["progress"] = self._progress_of(s)
         return out
 
