@@ -2,7 +2,10 @@
 
 A command module defines ``register(sub)``, adding its parser with
 ``set_defaults(func=...)``; the function takes the parsed arguments and returns an exit
-code (it may be a coroutine function). Errors a user can cause are printed as one line.
+code (it may be a coroutine function). Errors a user can cause are printed as one line,
+without a traceback, and exit with status 2. A request refused for one of its values
+(:class:`~daemon.errors.BadRequest`) is printed with the same text the web API answers,
+naming the command-line option instead of the JSON field.
 """
 
 from __future__ import annotations
@@ -17,8 +20,10 @@ from collections.abc import Sequence
 
 import daemon.commands
 from daemon import __version__
-from drivers.options import ConfigError
+from daemon.commands.common import flag_for
+from daemon.errors import BadRequest, Busy, NotFound
 from drivers.base import HardwareError
+from drivers.options import ConfigError
 
 EXIT_USER_ERROR = 2
 
@@ -45,7 +50,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         if inspect.iscoroutine(result):
             result = asyncio.run(result)
         return int(result or 0)
-    except (ConfigError, HardwareError) as exc:
+    except BadRequest as exc:
+        where = f"{flag_for(args, exc.field)}: " if exc.field else ""
+        print(f"phasewatch: {where}{exc.problem}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except (ConfigError, HardwareError, Busy, NotFound) as exc:
         print(f"phasewatch: {exc}", file=sys.stderr)
         return EXIT_USER_ERROR
     except OSError as exc:

@@ -93,13 +93,21 @@ def _describe_allowed(f: dataclasses.Field[Any], tp: Any) -> str:
         return "one of " + ", ".join(repr(c) for c in meta["choices"])
     lo, hi = meta.get("min"), meta.get("max")
     kind = _type_name(tp)
+    kind = kind if kind.startswith("a ") else f"a {kind}"  # "a list of ..." has its article
     if lo is not None and hi is not None:
-        return f"a {kind} from {lo} to {hi}{unit}"
+        return f"{kind} from {lo} to {hi}{unit}"
     if lo is not None:
-        return f"a {kind} of at least {lo}{unit}"
+        return f"{kind} of at least {lo}{unit}"
     if hi is not None:
-        return f"a {kind} of at most {hi}{unit}"
-    return f"a {kind}{unit}"
+        return f"{kind} of at most {hi}{unit}"
+    return f"{kind}{unit}"
+
+
+def describe_option(cls: type, name: str) -> str:
+    """What option ``name`` of ``cls`` takes, in the words of the loader's own messages
+    ('a number from 0.0 to 48.0 dB'), for help texts."""
+    f = next(f for f in dataclasses.fields(cls) if f.name == name)
+    return _describe_allowed(f, typing.get_type_hints(cls)[name])
 
 
 class _OutOfRange(TypeError):

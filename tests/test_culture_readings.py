@@ -236,6 +236,33 @@ async def test_the_api_serves_the_same_readings(store: FrameStore, tmp_path: Pat
     assert [row["confluence"] for row in rows] == ["" if r.confluence is None else f"{r.confluence:.4f}" for r in readings]
 
 
+@pytest.mark.timeout(120)
+async def test_the_well_readings_route_serves_the_read_model(store: FrameStore, tmp_path: Path) -> None:
+    from tests.web_support import served
+
+    tl = _growing_plate(store)
+    async with served(store.data_dir) as srv:
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl}/wells/c04/readings"), headers=srv.auth) as r:
+            assert r.status == 200, await r.text()
+            body = await r.json()
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl}/wells/H12/readings"), headers=srv.auth) as r:
+            assert r.status == 404
+            assert "not in time-lapse" in (await r.json())["error"]["message"]
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl}/wells/9Z/readings"), headers=srv.auth) as r:
+            assert r.status == 400
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl + 99}/wells/C4/readings"), headers=srv.auth) as r:
+            assert r.status == 404
+    expected = well_readings(store.index, tl, "C4")
+    assert body["well"] == "C4" and len(body["readings"]) == len(expected) == len(B3_SITE1)
+    for got, want in zip(body["readings"], expected, strict=True):
+        assert (got["tp"], got["t_s"], got["sites_used"], got["sites_total"], got["focus"]) == (
+            want.tp, want.t_s, want.sites_used, want.sites_total, want.focus.value)
+        assert got["confluence"] == want.confluence
+    # C4 lost focus at some time points: those readings say so and use fewer sites.
+    lost = [g for g in body["readings"] if g["tp"] in C4_FOCUS_LOST]
+    assert lost and all(g["sites_used"] < g["sites_imaged"] or g["confluence"] is None for g in lost)
+
+
 async def test_a_simulated_time_lapse_alerts_on_what_its_readings_show(tmp_path: Path) -> None:
     """The scheduler's own watch, on the simulated plate: its empty well H12 never comes
     into focus, and the alert the scheduler raised matches the readings of the index."""

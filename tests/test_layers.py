@@ -79,6 +79,23 @@ def test_the_daemon_never_imports_simulator_internals() -> None:
     assert violations("daemon", "drivers.sim") == []
 
 
+FRONT_ENDS = ("daemon.web", "daemon.commands", "daemon.cli")
+
+
+def test_the_service_and_the_domain_never_import_a_front_end() -> None:
+    """daemon/station.py and everything it builds on serve every front end: the web package
+    and the command line call them, never the reverse."""
+    found = []
+    for path in sorted((ROOT / "daemon").rglob("*.py")):
+        current = module_name(path)
+        if any(is_within(current, front) for front in FRONT_ENDS):
+            continue
+        for line, module in imported_modules(path.read_text(encoding="utf-8"), current, is_package=path.name == "__init__.py"):
+            if any(is_within(module, front) for front in FRONT_ENDS):
+                found.append(f"{path.relative_to(ROOT)}:{line} imports {module}")
+    assert found == []
+
+
 def test_the_registry_tables_name_driver_modules_only() -> None:
     # The registry imports by a name from these tables, which the ast walk cannot follow.
     for table in (registry.CAMERA_MODULES, registry.STAGE_MODULES):

@@ -92,7 +92,9 @@ def test_json_plan_defaults_and_round_trip(tmp_path: Path) -> None:
     assert plan.vessel == "24-well" and len(plan.wells) == 24
     assert (plan.sites_per_well, plan.autofocus, plan.z_stack, plan.exposure_ms, plan.save) == (1, "track", None, None, "corrected")
     again = Plan.from_dict(json.loads(json.dumps(plan.to_dict())))
-    assert again.to_dict() == plan.to_dict()
+    assert again.to_dict() == plan.to_dict() and plan.focus_metric == "variance_of_laplacian"
+    brenner = Plan.from_dict({**raw, "focus_metric": "brenner"})
+    assert Plan.from_dict(json.loads(json.dumps(brenner.to_dict()))).focus_metric == "brenner"
     full = load_plan(_write(tmp_path, FULL_PLAN))
     assert Plan.from_dict(full.to_dict()).to_dict() == full.to_dict()
 
@@ -133,6 +135,7 @@ MINIMAL = {"name": "x", "vessel": "96-well", "wells": "B2", "interval_s": 600, "
         ({"interval_s": 0.2}, "interval_s", "from 1.0"),
         ({"autofocus": "always"}, "autofocus", "one of 'track', 'first', 'off'"),
         ({"save": "jpeg"}, "save", "one of 'corrected', 'raw', 'both'"),
+        ({"focus_metric": "sharpness"}, "focus_metric", "one of 'variance_of_laplacian', 'brenner'"),
         ({"duration_s": 3600}, "duration_s", "count or duration_s, not both"),
         ({"count": None}, "count", "give either count"),
         ({"correction": False}, "save", "needs correction = true"),

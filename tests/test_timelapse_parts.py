@@ -124,9 +124,11 @@ class _Tracker:
     def __init__(self) -> None:
         self.keys: dict[str, Any] = {}
         self.asked: list[str] = []
+        self.metrics: list[str] = []
 
-    async def focus(self, scope: Any, key: str, x_um: float, y_um: float, *, on_point: Any) -> Any:
+    async def focus(self, scope: Any, key: str, x_um: float, y_um: float, *, on_point: Any, metric: str) -> Any:
         self.asked.append(key)
+        self.metrics.append(metric)
         found = key != "H12-1"
         return SimpleNamespace(found=found, z_um=1500.0 + len(self.asked), message="")
 
@@ -155,7 +157,7 @@ async def test_focus_policies() -> None:
 
     tracker = _Tracker()
     tracker.keys = {"B3-1": SimpleNamespace(planes=[1500.0])}  # something is known: no cold search
-    first = FocusPolicy("first", tracker)  # type: ignore[arg-type]
+    first = FocusPolicy("first", tracker, metric="brenner")  # type: ignore[arg-type]
     z0, r0 = await first.focus(scope, 0, _pos("B3-1"), _ignore)  # type: ignore[arg-type]
     _, bad = await first.focus(scope, 0, _pos("H12-1"), _ignore)  # type: ignore[arg-type]
     assert r0 is not None and r0.found and bad is not None and not bad.found
@@ -163,4 +165,5 @@ async def test_focus_policies() -> None:
     assert await first.focus(scope, 1, _pos("B3-1"), print) == (z0, None)  # type: ignore[arg-type]
     _, again = await first.focus(scope, 1, _pos("H12-1"), _ignore)  # type: ignore[arg-type]
     assert again is not None and tracker.asked == ["B3-1", "H12-1", "H12-1"]
+    assert tracker.metrics == ["brenner"] * 3  # the plan's metric reaches every search
     assert first.resume_state()["first_focus"]["planes"] == {"B3-1": z0}

@@ -25,7 +25,7 @@ from daemon.profile import PROFILE_DIR, Profile
 from daemon.web.app import ServeConfig, create_app, serve
 from daemon.web.auth import token_path
 from daemon.web.keys import STATION
-from daemon.web.station import Station
+from daemon.station import Station
 from tests.helpers import sim_profile
 
 LOOPBACK = "127.0.0.1"

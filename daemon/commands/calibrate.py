@@ -22,19 +22,22 @@ from typing import Any
 import numpy as np
 from scipy import ndimage
 
-from daemon.commands.common import add_profile_options, print_json, truth_beside
+from daemon.commands.common import (
+    add_position_options,
+    add_profile_options,
+    add_request_options,
+    move_from_args,
+    print_json,
+    request_from_args,
+    truth_beside,
+)
 from daemon.hardware import build_scope
 from daemon.illumination import CalibrationError
-from daemon.illumination.calibration import (
-    EXPOSURE_TOLERANCE,
-    GAIN_TOLERANCE_DB,
-    CalibrationStore,
-    acquire_dark,
-    acquire_flat,
-    check_blank_field,
-)
+from daemon.illumination.acquire import DarkRequest, FlatRequest, check_flat, setting, take_dark, take_flat
+from daemon.illumination.calibration import EXPOSURE_TOLERANCE, GAIN_TOLERANCE_DB, CalibrationStore, check_blank_field
 from daemon.illumination.inputs import expand_paths, read_input
 from daemon.illumination.retrospective import RetrospectiveFlatBuilder
+from daemon.manual import MoveTarget, apply_move
 from daemon.profile import Profile, load_profile
 from daemon.scope import Scope
 from drivers.registry import offline_truth
@@ -65,29 +68,30 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("calibrate", help="take dark and flat calibration frames, or list them")
     actions = p.add_subparsers(dest="what", metavar="WHAT", required=True)
 
-    def common(q: argparse.ArgumentParser, *, scope_options: bool = True) -> None:
+    def common(q: argparse.ArgumentParser) -> None:
         add_profile_options(q, data=True)
         q.add_argument("--json", action="store_true", help="print the result as JSON")
-        if scope_options:
-            q.add_argument("--frames", type=int, default=32, help="frames averaged (default 32)")
-            q.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: profile)")
-            q.add_argument("--gain-db", type=float, default=None, help="gain (default: profile)")
 
+    # The web API's calibration requests: the same fields, limits and checks.
     q = actions.add_parser("dark", help="average frames with the lamp off")
     common(q)
+    add_request_options(q, DarkRequest)
     q.set_defaults(func=run_dark)
 
-    q = actions.add_parser("flat", help="average frames of a blank field (needs the dark of the same setting)")
+    q = actions.add_parser(
+        "flat", help="average frames of a blank field (needs the dark of the same setting)",
+        description="Average frames of a blank field and store them as the flat field. Without a position "
+        "the field under the objective is used (on the simulated scope: the centre of its empty well).",
+    )
     common(q)
-    q.add_argument("--x-um", type=float, default=None, help="stage x of the blank field (default: here; sim: the empty well)")
-    q.add_argument("--y-um", type=float, default=None, help="stage y of the blank field")
-    q.add_argument("--defocus-um", type=float, default=None, help="defocus this far first, so structure washes out")
+    add_request_options(q, FlatRequest)
+    add_position_options(q, verb="take the blank field")
     q.add_argument("--check", type=int, default=0, metavar="N",
                    help="then take N more frames and report the blank field's non-uniformity before and after correction")
     q.set_defaults(func=run_flat)
 
     q = actions.add_parser("retro", help="estimate a flat from saved frames of many positions (no blank field needed)")
-    common(q, scope_options=False)
+    common(q)
     q.add_argument("inputs", nargs="+", type=Path, help="TIFF frames or folders of them (raw frames of a time-lapse)")
     q.add_argument("--exposure-ms", type=float, default=None, help="exposure of the frames (default: from their metadata)")
     q.add_argument("--gain-db", type=float, default=None, help="gain of the frames (default: from their metadata, else profile)")
@@ -96,16 +100,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     q.set_defaults(func=run_retro)
 
     q = actions.add_parser("list", help="list the stored calibration frames of a profile")
-    common(q, scope_options=False)
+    common(q)
     q.set_defaults(func=run_list)
-
-
-def _setting(profile: Profile, args: argparse.Namespace) -> tuple[float, float]:
-    exposure = args.exposure_ms if args.exposure_ms is not None else profile.camera.exposure_ms
-    gain = args.gain_db if args.gain_db is not None else profile.camera.gain_db
-    if not exposure > 0:
-        raise CalibrationError(f"--exposure-ms must be > 0, got {exposure:g}")
-    return exposure, gain
 
 
 def _fail(exc: CalibrationError) -> int:
@@ -138,39 +134,33 @@ def _emit(args: argparse.Namespace, report: dict[str, Any], lines: list[str]) ->
 
 async def run_dark(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
+    request = request_from_args(DarkRequest, args)
     store = CalibrationStore(args.data / "calibration")
     try:
-        exposure, gain = _setting(profile, args)
         scope = _open_scope(profile, args)
         async with scope, scope.claim("dark calibration"):
-            dark = await acquire_dark(
-                scope, frames=args.frames, exposure_ms=exposure, gain_db=gain,
-                progress=stderr_progress("dark frames"),
-            )
-            t_s = scope.clock.now()
-            truth = _true_dark_dn(scope.truth.sensor(gain), exposure, gain)
-        path = await asyncio.to_thread(
-            store.save_dark, profile, dark, exposure_ms=exposure, gain_db=gain, frames=args.frames,
-            bit_depth=profile.camera.bit_depth, acquired_t_s=t_s,
-        )
+            taken = await take_dark(scope, store, request, progress=stderr_progress("dark frames"))
+            truth = _true_dark_dn(scope.truth.sensor(taken.gain_db), taken.exposure_ms, taken.gain_db)
     except CalibrationError as exc:
         return _fail(exc)
+    dark = taken.image
     mean = float(dark.mean())
     report = {
-        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": args.frames,
+        "saved": str(taken.path), "exposure_ms": taken.exposure_ms, "gain_db": taken.gain_db, "frames": taken.frames,
         "mean_dn": mean, "std_dn": float(dark.std()), "simulator_mean_dn": truth,
     }
     _emit(args, report, [
-        f"saved dark frame {path} ({args.frames} frames, {exposure:g} ms, {gain:g} dB)",
+        f"saved dark frame {taken.path} ({taken.frames} frames, {taken.exposure_ms:g} ms, {taken.gain_db:g} dB)",
         f"  mean {truth_beside(mean, truth, 'DN')}, spatial std {dark.std():.2f} DN",
     ])
     return 0
 
 
-async def _move_to_blank(scope: Scope, args: argparse.Namespace) -> str:
-    if args.x_um is not None or args.y_um is not None:
-        await scope.move_to(x_um=args.x_um, y_um=args.y_um)
-        return f"x {args.x_um} um, y {args.y_um} um"
+async def _move_to_blank(scope: Scope, target: MoveTarget | None) -> str:
+    """Go to the blank field asked for; else the simulator's empty well, else stay."""
+    if target is not None:
+        pos = await apply_move(scope, target)
+        return f"well {target.well}" if target.well else f"x {pos.x_um:.0f} um, y {pos.y_um:.0f} um"
     for well in scope.truth.blank_wells():
         centre = scope.truth.well_centre_um(well)
         if centre is not None:
@@ -196,47 +186,37 @@ def _illumination_truth_error(scope: Scope, flat: np.ndarray, dark: np.ndarray) 
 
 async def run_flat(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
+    request = request_from_args(FlatRequest, args)
     store = CalibrationStore(args.data / "calibration")
+    exposure, gain = setting(profile, request)
     try:
-        exposure, gain = _setting(profile, args)
-        found_dark = await asyncio.to_thread(store.find_dark, profile, exposure, gain)
-        if found_dark is None:
-            raise CalibrationError(store.describe_missing(profile, exposure, gain))
-        dark, _ = found_dark
+        await asyncio.to_thread(check_flat, store, profile, request)  # before the hardware is opened
+        target = move_from_args(profile, args)
         scope = _open_scope(profile, args)
         async with scope, scope.claim("flat calibration"):
-            where = await _move_to_blank(scope, args)
+            where = await _move_to_blank(scope, target)
             print(f"flat field: {where}", file=sys.stderr)
-            flat = await acquire_flat(
-                scope, frames=args.frames, exposure_ms=exposure, gain_db=gain, defocus_um=args.defocus_um,
-                progress=stderr_progress("flat frames"),
-            )
-            t_s = scope.clock.now()
-            pos = await scope.position()
-            truth_err = _illumination_truth_error(scope, flat, dark)
-            method = "blank field, averaged" + (f", defocused {args.defocus_um:g} um" if args.defocus_um else "")
-            path = await asyncio.to_thread(
-                store.save_flat, profile, flat, exposure_ms=exposure, gain_db=gain, frames=args.frames,
-                bit_depth=profile.camera.bit_depth, method=method, acquired_t_s=t_s,
-                extra={"position_um": {"x": pos.x_um, "y": pos.y_um, "z": pos.z_um}, "where": where},
-            )
+            taken = await take_flat(scope, store, request, where=where, progress=stderr_progress("flat frames"))
+            assert taken.dark is not None
+            truth_err = _illumination_truth_error(scope, taken.image, taken.dark)
             check = None
             if args.check:
                 corrector = store.require(profile, exposure, gain).corrector()
                 check = await check_blank_field(
-                    scope, corrector, dark, frames=args.check, exposure_ms=exposure, gain_db=gain,
+                    scope, corrector, taken.dark, frames=args.check, exposure_ms=exposure, gain_db=gain,
                     progress=stderr_progress("check frames"),
                 )
     except CalibrationError as exc:
         return _fail(exc)
+    path = taken.path
     meta = store.find(profile, exposure, gain)
     quality = meta.flat_meta["quality"] if meta else {}
     report: dict[str, Any] = {
-        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": args.frames, "where": where,
+        "saved": str(path), "exposure_ms": exposure, "gain_db": gain, "frames": taken.frames, "where": where,
         "quality": quality, "simulator_illumination_rms_error": truth_err, "check": check,
     }
     lines = [
-        f"saved flat {path} ({args.frames} frames, {exposure:g} ms, {gain:g} dB)",
+        f"saved flat {path} ({taken.frames} frames, {exposure:g} ms, {gain:g} dB)",
         f"  signal above dark {quality.get('response_mean_dn', float('nan')):.1f} DN; shading "
         f"{quality.get('shading_std_fraction', float('nan')) * 100:.1f} % std, "
         f"{quality.get('shading_range_fraction', float('nan')) * 100:.0f} % from darkest to brightest",

@@ -22,6 +22,7 @@ from typing import Any
 
 from daemon import __version__
 from daemon.commands.calibrate import _move_to_blank, stderr_progress
+from daemon.manual import MoveTarget
 from daemon.commands.common import add_profile_options, print_json
 from daemon.hardware import build_scope
 from daemon.illumination import CalibrationError
@@ -121,7 +122,8 @@ async def characterize(
     out.mkdir(parents=True, exist_ok=True)
     scope = build_scope(profile, sim_speed=sim_speed)
     async with scope, scope.claim("camera characterisation"):
-        where = await _move_to_blank(scope, argparse.Namespace(x_um=x_um, y_um=y_um))
+        blank = MoveTarget(x_um, y_um, None) if x_um is not None or y_um is not None else None
+        where = await _move_to_blank(scope, blank)
         if progress is not None:
             print(f"characterising on {where}", file=sys.stderr)
         m = await measure(scope, gain_db=gain, steps=steps, spatial_frames=spatial_frames, progress=progress)

@@ -18,13 +18,20 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from daemon.commands.common import add_profile_options, truth_beside
+from daemon.commands.common import (
+    add_profile_options,
+    add_request_options,
+    move_from_args,
+    request_from_args,
+    truth_beside,
+)
 from daemon.commands.snap import write_tiff
 from daemon.hardware import build_scope
 from daemon.illumination import CalibrationError
 from daemon.illumination.calibration import CalibrationStore
 from daemon.illumination.correction import Corrector
 from daemon.illumination.inputs import InputFrame, expand_paths, read_input
+from daemon.manual import CaptureRequest, MoveRequest, apply_move, capture
 from daemon.profile import Profile, load_profile
 from drivers.base import Frame
 
@@ -36,11 +43,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--output", "-o", type=Path, required=True, help="corrected .tif (capture) or output folder (saved frames)")
     p.add_argument("--raw", type=Path, default=None, help="capture only: also save the raw frame here")
     p.add_argument("--float", action="store_true", help="write float32 instead of the raw frame's integer type")
-    p.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: the frame's, else profile)")
-    p.add_argument("--gain-db", type=float, default=None, help="gain (default: the frame's, else profile)")
-    p.add_argument("--x-um", type=float, default=None, help="capture only: stage x first")
-    p.add_argument("--y-um", type=float, default=None, help="capture only: stage y first")
-    p.add_argument("--z-um", type=float, default=None, help="capture only: focus position first")
+    add_request_options(p, CaptureRequest, helps={
+        "exposure_ms": "exposure (default: the frame's, else the profile's)",
+        "gain_db": "analogue gain (default: the frame's, else the profile's)",
+    })
+    add_request_options(p, MoveRequest, only=("x_um", "y_um", "z_um"), helps={
+        "x_um": "capture only: stage x first", "y_um": "capture only: stage y first",
+        "z_um": "capture only: focus position first",
+    })
     p.set_defaults(func=run)
 
 
@@ -68,16 +78,18 @@ async def _capture(args: argparse.Namespace, profile: Profile, store: Calibratio
         _tiff_name(args.raw)
         if args.raw.resolve() == args.output.resolve():
             raise CalibrationError("--raw and --output name the same file")
-    exposure = args.exposure_ms if args.exposure_ms is not None else profile.camera.exposure_ms
-    gain = args.gain_db if args.gain_db is not None else profile.camera.gain_db
+    settings = request_from_args(CaptureRequest, args)
+    exposure = settings.exposure_ms if settings.exposure_ms is not None else profile.camera.exposure_ms
+    gain = settings.gain_db if settings.gain_db is not None else profile.camera.gain_db
     corrector = await asyncio.to_thread(_corrector, store, profile, exposure, gain)
     args.data.mkdir(parents=True, exist_ok=True)
+    target = move_from_args(profile, args, ("x_um", "y_um", "z_um"))
     scope = build_scope(profile, sim_speed=args.sim_speed, data_dir=args.data)
     async with scope, scope.claim("corrected snapshot"):
-        if args.x_um is not None or args.y_um is not None or args.z_um is not None:
-            await scope.move_to(x_um=args.x_um, y_um=args.y_um, z_um=args.z_um)
+        if target is not None:
+            await apply_move(scope, target)
         pos = await scope.position()
-        frame = await scope.capture(exposure_ms=exposure, gain_db=gain)
+        frame = await capture(scope, settings)
         truth_z = scope.true_focus_z_um()
     corrected = await asyncio.to_thread(_corrected, corrector, frame.pixels, args.float)
     geometry = {"pixel_size_um": profile.optics.pixel_size_um, "x_um": pos.x_um, "y_um": pos.y_um, "z_um": pos.z_um}
@@ -107,8 +119,9 @@ def _spread(raw: np.ndarray, corrector: Corrector) -> str:
 
 
 def _frame_setting(f: InputFrame, args: argparse.Namespace, profile: Profile) -> tuple[float, float]:
-    exposure = args.exposure_ms if args.exposure_ms is not None else f.exposure_ms
-    gain = args.gain_db if args.gain_db is not None else f.gain_db
+    settings = request_from_args(CaptureRequest, args)
+    exposure = settings.exposure_ms if settings.exposure_ms is not None else f.exposure_ms
+    gain = settings.gain_db if settings.gain_db is not None else f.gain_db
     return (
         exposure if exposure is not None else profile.camera.exposure_ms,
         gain if gain is not None else profile.camera.gain_db,

@@ -19,24 +19,19 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from daemon.storage.export import default_export_dir, export_csv, export_stacks
+    """The same exports as ``POST /api/v1/timelapses/{id}/exports`` (:meth:`Archive.make_exports`)."""
+    from daemon.archive import Archive
     from daemon.storage.index import INDEX_FILE, open_index
 
     if not (args.data / INDEX_FILE).exists():
         raise OSError(f"{args.data}: no phasewatch index here (no time-lapse was run with --data {args.data})")
     with open_index(args.data) as index:
-        out = args.output or default_export_dir(args.data, index, args.id)
-        frames_csv, points_csv = export_csv(index, args.id, out)
-        n_frames = len(index.frames(args.id))
-        print(
-            f"wrote {frames_csv} ({n_frames} frames), {points_csv}, {frames_csv.with_name('wells.csv')}"
-            f" and {frames_csv.with_name('growth.csv')}"
-        )
-        if args.stacks:
-            stacks = export_stacks(index, args.data, args.id, out, kind=args.kind)
-            for s in stacks:
-                skipped = f", {s.skipped_time_points} incomplete time points left out" if s.skipped_time_points else ""
-                print(f"wrote {s.path} ({s.time_points} time points x {s.z_planes} planes{skipped})")
-            if not stacks:
-                print("no frames to stack")
+        made = Archive(args.data, index).make_exports(args.id, folder=args.output, stacks=args.stacks, kind=args.kind)
+    print(f"wrote {made.frames_csv} ({made.frames} frames), {made.time_points_csv}, "
+          f"{made.frames_csv.with_name('wells.csv')} and {made.frames_csv.with_name('growth.csv')}")
+    for s in made.stacks:
+        skipped = f", {s.skipped_time_points} incomplete time points left out" if s.skipped_time_points else ""
+        print(f"wrote {s.path} ({s.time_points} time points x {s.z_planes} planes{skipped})")
+    if args.stacks and not made.stacks:
+        print("no frames to stack")
     return 0

@@ -8,14 +8,15 @@ import math
 from daemon.commands.common import (
     add_position_options,
     add_profile_options,
+    add_request_options,
+    move_from_args,
     print_json,
-    target_position_um,
+    request_from_args,
     truth_beside,
 )
-from drivers.options import ConfigError
-from daemon.focus.autofocus import FocusPoint, FocusResult, autofocus
-from daemon.focus.metrics import METRICS
+from daemon.focus.autofocus import AutofocusRequest, FocusPoint, FocusResult, autofocus_as_asked
 from daemon.hardware import build_scope
+from daemon.manual import apply_move
 from daemon.profile import load_profile
 
 BAR_WIDTH = 40
@@ -31,44 +32,25 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     add_profile_options(p)
     p.add_argument("--json", action="store_true", help="print the result as JSON")
-    p.add_argument("--metric", choices=sorted(METRICS), default="variance_of_laplacian", help="focus metric")
     add_position_options(p, verb="focus")
-    p.add_argument(
-        "--z-um", type=float, default=None,
-        help="centre of the search (default: the present focus, or the profile's [focus] nominal_z_um "
-        "when the focus is far from it, as after homing)",
-    )
-    p.add_argument("--range-um", type=float, default=None, help="width of the search (default: from the optics)")
-    p.add_argument(
-        "--roi", type=int, nargs=4, metavar=("X", "Y", "W", "H"), default=None,
-        help="score only this region of the frame (pixels)",
+    # The web API's autofocus request: the same fields, limits and checks.
+    add_request_options(
+        p, AutofocusRequest, flags={"centre_z_um": ["--z-um", "--centre-z-um"], "roi_px": ["--roi"]},
+        metavars={"roi_px": ("X", "Y", "W", "H")},
     )
     p.set_defaults(func=run)
 
 
-def _check_args(args: argparse.Namespace, profile_path: str, width: int, height: int) -> None:
-    if args.range_um is not None and not (args.range_um > 0 and math.isfinite(args.range_um)):
-        raise ConfigError(profile_path, "", "--range-um", f"must be a positive width in um, got {args.range_um}")
-    if args.roi is not None:
-        x, y, w, h = args.roi
-        if w < 3 or h < 3 or x < 0 or y < 0 or x + w > width or y + h > height:
-            raise ConfigError(
-                profile_path, "", "--roi", f"region {x} {y} {w} {h} must lie inside the {width}x{height} px frame, at least 3x3 px"
-            )
-
-
 async def run(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
-    _check_args(args, str(profile.path), profile.camera.width_px, profile.camera.height_px)
-    x_um, y_um = target_position_um(profile, args)
+    request = request_from_args(AutofocusRequest, args)
+    request.check(profile)  # refused before the hardware is opened
+    target = move_from_args(profile, args)
     scope = build_scope(profile, sim_speed=args.sim_speed)
     async with scope, scope.claim("autofocus (command line)"):
-        if x_um is not None or y_um is not None:
-            await scope.move_to(x_um=x_um, y_um=y_um)
-        result = await autofocus(
-            scope, metric=args.metric, centre_z_um=args.z_um, range_um=args.range_um,
-            roi=tuple(args.roi) if args.roi else None,
-        )
+        if target is not None:
+            await apply_move(scope, target)
+        result = await autofocus_as_asked(scope, request)
         if scope.truth.known and not result.found:
             here = await scope.position()
             if scope.truth.well_at(here.x_um, here.y_um) is None:

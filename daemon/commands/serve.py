@@ -14,7 +14,7 @@ from daemon.storage.space import DEFAULT_RESERVE_MB
 
 def register(sub: argparse._SubParsersAction) -> None:
     from daemon.web.app import DEFAULT_HOST, DEFAULT_PORT
-    from daemon.web.stream import DEFAULT_MAX_FPS
+    from daemon.live import DEFAULT_MAX_FPS
 
     p = sub.add_parser("serve", help="run the daemon: web interface, API, live view, time-lapses")
     add_profile_options(p, data=True)

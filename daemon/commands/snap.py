@@ -10,8 +10,17 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from daemon.commands.common import add_position_options, add_profile_options, target_position_um, truth_beside
+from daemon.commands.common import (
+    POSITION_FIELDS,
+    add_position_options,
+    add_profile_options,
+    add_request_options,
+    move_from_args,
+    request_from_args,
+    truth_beside,
+)
 from daemon.hardware import build_scope
+from daemon.manual import CaptureRequest, apply_move, capture
 from daemon.profile import load_profile
 from daemon.storage.ome import iso_utc
 from drivers import atomic
@@ -25,14 +34,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("snap", help="capture one frame and save it as a lossless TIFF")
     add_profile_options(p)
     p.add_argument("--output", "-o", type=Path, required=True, help="file to write (.tif)")
-    add_position_options(p, verb="take the frame")
-    p.add_argument("--z-um", type=float, default=None, help="focus position for the frame")
+    add_position_options(p, verb="take the frame", z=True)
     p.add_argument(
         "--autofocus", action="store_true",
         help="focus before the frame (default on the simulated scope when no --z-um is given)",
     )
-    p.add_argument("--exposure-ms", type=float, default=None, help="exposure (default: profile)")
-    p.add_argument("--gain-db", type=float, default=None, help="gain (default: profile)")
+    add_request_options(p, CaptureRequest)
     p.set_defaults(func=run)
 
 
@@ -64,22 +71,22 @@ async def run(args: argparse.Namespace) -> int:
     if not args.output.parent.exists():
         print(f"phasewatch: --output {args.output}: folder {args.output.parent} does not exist", file=sys.stderr)
         return 2
-    x_um, y_um = target_position_um(profile, args)
-    if profile.is_simulated and args.well is None and x_um is None and y_um is None:
+    settings = request_from_args(CaptureRequest, args)
+    if profile.is_simulated and args.well is None and args.x_um is None and args.y_um is None:
         # After homing the simulated stage sits off the plate: show a well with cells instead.
         args.well = DEMO_WELL
-        x_um, y_um = target_position_um(profile, args)
+    target = move_from_args(profile, args, POSITION_FIELDS + ("z_um",))
     scope = build_scope(profile, sim_speed=args.sim_speed)
     async with scope, scope.claim("snap (command line)"):
-        if x_um is not None or y_um is not None or args.z_um is not None:
-            await scope.move_to(x_um=x_um, y_um=y_um, z_um=args.z_um)
+        if target is not None:
+            await apply_move(scope, target)
         if args.autofocus or (profile.is_simulated and args.z_um is None):
             from daemon.focus.autofocus import autofocus
 
             focus = await autofocus(scope)
             print(focus.message)
         pos = await scope.position()
-        frame = await scope.capture(exposure_ms=args.exposure_ms, gain_db=args.gain_db)
+        frame = await capture(scope, settings)
         await asyncio.to_thread(
             write_tiff, args.output, frame,
             pixel_size_um=profile.optics.pixel_size_um, x_um=pos.x_um, y_um=pos.y_um, z_um=pos.z_um,

@@ -41,7 +41,9 @@ from typing import TYPE_CHECKING, Any
 import cv2
 import numpy as np
 
-from daemon.focus.metrics import Roi, get_metric
+from daemon.errors import BadRequest
+from daemon.focus.metrics import DEFAULT_METRIC, METRICS, Roi, get_metric
+from drivers.options import option
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
@@ -74,6 +76,37 @@ FLANK_PROBE_DOF = 1.5  # where judge_peak takes a frame on a side that has none
 DARK_LEVEL = 0.05
 VERIFY_FRACTION = 0.6  # the confirming frame keeps this share of the peak's height over the floor
 MAX_REFINE_FRAMES = 8
+MIN_ROI_PX = 3  # the smallest region a 3x3 Laplacian can score
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class AutofocusRequest:
+    """One cold autofocus as a person asks for it (command line, web API).
+
+    The limits that depend on the scope (the focus travel, the frame size) are checked by
+    :func:`check_search`, which :func:`autofocus` itself calls.
+    """
+
+    metric: str = option(DEFAULT_METRIC, doc="focus metric", choices=tuple(METRICS))
+    centre_z_um: float | None = option(
+        None, unit="um",
+        doc="centre of the search, within [focus] z_min_um to z_safe_max_um (default: the present focus, "
+            "or [focus] nominal_z_um when the focus is far from it, as after homing)",
+    )
+    range_um: float | None = option(
+        None, unit="um",
+        doc="width of the search, more than 0 and at most the focus travel from [focus] z_min_um to "
+            "z_safe_max_um (default: 2 x max(150 um, 15 depths of field))",
+    )
+    roi_px: tuple[int, ...] | None = option(
+        None, min=0,
+        doc="score only this region of the frame: x, y, width, height in pixels, inside the frame and "
+            f"at least {MIN_ROI_PX} x {MIN_ROI_PX} (default: the whole frame)",
+    )
+
+    def check(self, profile: Profile) -> None:
+        """:func:`check_search` of this request: refused before the scope is opened or claimed."""
+        check_search(profile, metric=self.metric, centre_z_um=self.centre_z_um, range_um=self.range_um, roi=self.roi_px)
 
 
 @dataclasses.dataclass(slots=True)
@@ -109,7 +142,7 @@ class FocusResult:
     curve: list[FocusPoint]
     message: str
     true_z_um: float | None = None
-    metric: str = "variance_of_laplacian"
+    metric: str = DEFAULT_METRIC
     floor: float = float("nan")
     width_um: float = float("nan")
 
@@ -207,7 +240,7 @@ class FocusProbe:
         scope: Scope,
         plan: FocusPlan,
         *,
-        metric: str = "variance_of_laplacian",
+        metric: str = DEFAULT_METRIC,
         roi: Roi | None = None,
         on_point: Callable[[FocusPoint], None] | None = None,
     ) -> None:
@@ -574,6 +607,43 @@ async def _give_up(
     )
 
 
+def check_search(
+    profile: Profile,
+    *,
+    metric: str,
+    centre_z_um: float | None,
+    range_um: float | None,
+    roi: Sequence[int] | None,
+) -> None:
+    """Refuse a search this scope cannot make, before anything moves (:class:`BadRequest`
+    naming the field): an unknown metric, a range that is not positive or wider than the
+    focus travel, a centre outside the focus limits, a region not inside the frame."""
+    if metric not in METRICS:
+        raise BadRequest(f"unknown focus metric {metric!r}; choose one of: {', '.join(METRICS)}", field="metric")
+    f = profile.focus
+    travel_um = f.z_safe_max_um - f.z_min_um
+    limits = f"[focus] z_min_um {f.z_min_um:g} to z_safe_max_um {f.z_safe_max_um:g} um"
+    if range_um is not None:
+        if not (math.isfinite(range_um) and range_um > 0):
+            raise BadRequest(f"must be more than 0 um, got {range_um:g}", field="range_um")
+        if range_um > travel_um:
+            raise BadRequest(
+                f"{range_um:g} um is wider than the focus travel of {travel_um:g} um ({limits})", field="range_um"
+            )
+    if centre_z_um is not None and not (math.isfinite(centre_z_um) and f.z_min_um <= centre_z_um <= f.z_safe_max_um):
+        raise BadRequest(f"{centre_z_um:g} um lies outside the focus limits ({limits})", field="centre_z_um")
+    if roi is not None:
+        cam = profile.camera
+        if len(roi) != 4:
+            raise BadRequest(f"give 4 whole numbers (x, y, width, height in px), got {len(roi)}", field="roi_px")
+        x, y, w, h = roi
+        if w < MIN_ROI_PX or h < MIN_ROI_PX or x < 0 or y < 0 or x + w > cam.width_px or y + h > cam.height_px:
+            raise BadRequest(
+                f"region {x} {y} {w} {h} must lie inside the {cam.width_px}x{cam.height_px} px frame, "
+                f"at least {MIN_ROI_PX}x{MIN_ROI_PX} px", field="roi_px",
+            )
+
+
 def default_centre_z_um(profile: Profile, plan: FocusPlan, present_z_um: float) -> float:
     """Where a cold search centres when told nothing: the present focus, unless it lies
     farther than the full width of the search from the profile's nominal focus plane (a homed or
@@ -622,7 +692,7 @@ async def cold_search(
 async def autofocus(
     scope: Scope,
     *,
-    metric: str = "variance_of_laplacian",
+    metric: str = DEFAULT_METRIC,
     centre_z_um: float | None = None,
     range_um: float | None = None,
     roi: Roi | None = None,
@@ -639,11 +709,11 @@ async def autofocus(
     focus returns to ``fallback_z_um`` (the last good plane) if given, else to where it
     started, and the result says so.
     ``confirm=False`` skips the confirming frame at the chosen plane. The caller holds
-    the scope (``scope.claim``) for the duration.
+    the scope (``scope.claim``) for the duration. A search the scope cannot make is
+    refused by :func:`check_search` before anything moves.
     """
+    check_search(scope.profile, metric=metric, centre_z_um=centre_z_um, range_um=range_um, roi=roi)
     plan = FocusPlan.for_profile(scope.profile)
-    if range_um is not None and not range_um > 0:
-        raise ValueError(f"autofocus range must be > 0 um, got {range_um}")
     start = await scope.position()
     centre = default_centre_z_um(scope.profile, plan, start.z_um) if centre_z_um is None else centre_z_um
     half = plan.cold_half_range_um if range_um is None else range_um / 2.0
@@ -654,3 +724,15 @@ async def autofocus(
     else:
         fallback, name = start.z_um, "starting plane"
     return await cold_search(probe, lo, hi, fallback_z_um=fallback, fallback_name=name, confirm=confirm)
+
+
+async def autofocus_as_asked(
+    scope: Scope, request: AutofocusRequest, *, on_point: Callable[[FocusPoint], None] | None = None
+) -> FocusResult:
+    """:func:`autofocus` with a person's request (command line, web API); the caller holds the scope."""
+    roi = tuple(request.roi_px) if request.roi_px is not None else None
+    return await autofocus(
+        scope, metric=request.metric, centre_z_um=request.centre_z_um, range_um=request.range_um,
+        roi=roi,  # type: ignore[arg-type]
+        on_point=on_point,
+    )

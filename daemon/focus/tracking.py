@@ -35,6 +35,7 @@ from daemon.focus.autofocus import (
     default_centre_z_um,
     refine,
 )
+from daemon.focus.metrics import DEFAULT_METRIC
 from daemon.focus.surface import SurfaceFit, SurfacePoint, fit_focus_surface
 
 if TYPE_CHECKING:
@@ -161,7 +162,7 @@ class FocusTracker:
         y_um: float,
         *,
         on_point: Callable[[FocusPoint], None] | None = None,
-        metric: str = "variance_of_laplacian",
+        metric: str = DEFAULT_METRIC,
     ) -> FocusResult:
         """Focus ``key``; the stage is already at (x_um, y_um). Records the plane if found."""
         plan = self.plan

@@ -17,6 +17,8 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
+from daemon.focus.metrics import DEFAULT_METRIC
+
 if TYPE_CHECKING:
     from daemon.focus.autofocus import FocusPoint, FocusResult
     from daemon.focus.tracking import FocusTracker
@@ -33,20 +35,26 @@ FIRST_FIND_TRIES = 2
 class FocusPolicy:
     """The plan's focus policy over one time-lapse, with what it has learnt so far."""
 
-    def __init__(self, autofocus: str, tracker: FocusTracker, first_focus: dict[str, Any] | None = None) -> None:
+    def __init__(
+        self, autofocus: str, tracker: FocusTracker, first_focus: dict[str, Any] | None = None,
+        *, metric: str = DEFAULT_METRIC,
+    ) -> None:
         self.autofocus = autofocus
+        self.metric = metric
         self.tracker = tracker
         # Planes found at the first time point (policy "first"), and the fixed plane (policy "off").
         self.first_focus: dict[str, Any] = first_focus or {"planes": {}, "fixed_z_um": None}
         self._first_finds: dict[int, int] = {}
 
     @classmethod
-    def from_saved(cls, profile: Profile, autofocus: str, saved: dict[str, Any]) -> FocusPolicy:
+    def from_saved(
+        cls, profile: Profile, autofocus: str, saved: dict[str, Any], *, metric: str = DEFAULT_METRIC
+    ) -> FocusPolicy:
         """The policy as :meth:`resume_state` left it (or a fresh one)."""
         from daemon.focus.tracking import FocusTracker
 
         tracker = FocusTracker.from_dict(profile, saved["tracker"]) if saved.get("tracker") else FocusTracker(profile)
-        return cls(autofocus, tracker, saved.get("first_focus"))
+        return cls(autofocus, tracker, saved.get("first_focus"), metric=metric)
 
     def resume_state(self) -> dict[str, Any]:
         return {"tracker": self.tracker.to_dict(), "first_focus": self.first_focus}
@@ -68,7 +76,7 @@ class FocusPolicy:
             self._first_finds[k] = self._first_finds.get(k, 0) + 1
             result = await self._first_find(scope, pos, on_point)
         else:
-            result = await self.tracker.focus(scope, pos.key, pos.x_um, pos.y_um, on_point=on_point)
+            result = await self.tracker.focus(scope, pos.key, pos.x_um, pos.y_um, on_point=on_point, metric=self.metric)
         if self.autofocus == "first" and result.found:
             planes[pos.key] = result.z_um
         return result.z_um, result
@@ -83,6 +91,6 @@ class FocusPolicy:
         """
         from daemon.focus.autofocus import autofocus
 
-        result = await autofocus(scope, on_point=on_point)
+        result = await autofocus(scope, on_point=on_point, metric=self.metric)
         result.message += " (first search of the time-lapse)"
         return self.tracker.record(pos.key, pos.x_um, pos.y_um, result)

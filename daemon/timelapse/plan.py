@@ -30,6 +30,7 @@ import tomllib
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from daemon.focus.metrics import DEFAULT_METRIC, METRICS
 from drivers.options import ConfigError, load_section, option, section
 from daemon.vessels.geometry import Vessel, VesselError, Well, get_vessel, parse_wells
 from daemon.vessels.stage_map import StageMap, sim_vessel_name
@@ -97,6 +98,7 @@ class Plan:
     vessel_file: str = ""
     site_spacing_um: float | None = None
     source: str = ""
+    focus_metric: str = DEFAULT_METRIC
 
     @property
     def duration_s(self) -> float:
@@ -126,7 +128,7 @@ class Plan:
         d: dict[str, Any] = {
             "name": self.name, "vessel": self.vessel, "wells": list(self.wells),
             "sites_per_well": self.sites_per_well, "interval_s": self.interval_s, "count": self.count,
-            "autofocus": self.autofocus, "correction": self.correction, "save": self.save, "notes": self.notes,
+            "autofocus": self.autofocus, "focus_metric": self.focus_metric, "correction": self.correction, "save": self.save, "notes": self.notes,
         }
         if self.z_stack:
             d["z_stack"] = {"count": self.z_stack.count, "step_um": self.z_stack.step_um}
@@ -146,13 +148,13 @@ class Plan:
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
-class _ZStackOptions:
+class ZStackOptions:
     count: int = option(1, doc="planes per position (1 = no z-stack)", min=1, max=201)
     step_um: float = option(2.0, doc="focus step between planes", min=0.05, max=500.0, unit="um")
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
-class _PlanOptions:
+class PlanOptions:
     name: str = option(doc="name of the time-lapse, shown in lists and exports")
     vessel: str = option(doc="vessel type, e.g. '96-well', '24-well', '35mm-dish' (phasewatch vessel list)")
     vessel_file: str = option("", doc="extra vessels file (TOML), relative to the plan, for vessels of your own")
@@ -163,7 +165,8 @@ class _PlanOptions:
     count: int | None = option(None, doc="number of time points (or give duration_s)", min=1, max=10_000_000)
     duration_s: float | None = option(None, doc="time from the first time point to the last (or give count)", min=0.0, max=3650 * 86400.0, unit="s")
     autofocus: str = option("track", doc="'track': every time point, from the last plane; 'first': first time point only; 'off'", choices=AUTOFOCUS_POLICIES)
-    z_stack: _ZStackOptions = section(_ZStackOptions, doc="optional z-stack at every position")
+    focus_metric: str = option(DEFAULT_METRIC, doc="focus metric of every search (phasewatch focus --help lists them)", choices=tuple(METRICS))
+    z_stack: ZStackOptions = section(ZStackOptions, doc="optional z-stack at every position")
     exposure_ms: float | None = option(None, doc="exposure; leave out for the profile's default", min=0.01, max=10000.0, unit="ms")
     gain_db: float | None = option(None, doc="analogue gain; leave out for the profile's default", min=0.0, max=48.0, unit="dB")
     correction: bool = option(True, doc="apply dark and flat-field correction")
@@ -187,7 +190,11 @@ def count_from_duration(duration_s: float, interval_s: float) -> int:
 
 
 def _plan_from_table(raw: Any, *, file: str | Path, base_dir: Path | None) -> Plan:
-    opts = load_section(_PlanOptions, raw, file=file, section="")
+    return plan_from_options(load_section(PlanOptions, raw, file=file, section=""), file=file, base_dir=base_dir)
+
+
+def plan_from_options(opts: PlanOptions, *, file: str | Path = "plan", base_dir: Path | None = None) -> Plan:
+    """The plan of loaded options: its vessel and wells resolved (ConfigError naming the key)."""
     vessel_file = ""
     if opts.vessel_file:
         vf = Path(opts.vessel_file)
@@ -208,7 +215,7 @@ def _plan_from_table(raw: Any, *, file: str | Path, base_dir: Path | None) -> Pl
     zs = opts.z_stack
     return Plan(
         name=opts.name.strip(), vessel=vessel.name, wells=wells, sites_per_well=opts.sites_per_well,
-        interval_s=opts.interval_s, count=count, autofocus=opts.autofocus,
+        interval_s=opts.interval_s, count=count, autofocus=opts.autofocus, focus_metric=opts.focus_metric,
         z_stack=ZStack(zs.count, zs.step_um) if zs.count > 1 else None,
         exposure_ms=opts.exposure_ms, gain_db=opts.gain_db, correction=opts.correction,
         save=opts.save, notes=opts.notes, vessel_file=vessel_file,

@@ -114,7 +114,7 @@ class Scheduler:
         self.store = FrameStore(data_dir, index)
         self.guard = space_guard or SpaceGuard(data_dir, row["reserve_mb"])
         saved = index.resume_state(timelapse_id)
-        self.focusing = FocusPolicy.from_saved(self.profile, self.plan.autofocus, saved)
+        self.focusing = FocusPolicy.from_saved(self.profile, self.plan.autofocus, saved, metric=self.plan.focus_metric)
         self.watch = CultureWatch.from_dict(saved["watch"]) if saved.get("watch") else CultureWatch()
         cam = self.profile.camera
         self.exposure_ms = self.plan.exposure_ms if self.plan.exposure_ms is not None else cam.exposure_ms

@@ -1,4 +1,10 @@
-"""The JSON API under ``/api/v1/``: routes, request checks, and errors as JSON.
+"""The JSON API under ``/api/v1/``: routes, and errors as JSON.
+
+Handlers only translate HTTP: each parses its body and query string into the request
+dataclass it declares with :func:`takes` (through the profile loader's strict rules,
+:mod:`daemon.requests`), calls one :class:`~daemon.station.Station` method and writes its
+typed result as JSON. The OpenAPI document names the same dataclasses, and
+``tests/test_web_openapi.py`` checks that each route documents the request it parses.
 
 Every error a client can cause comes back as ``{"error": {"status", "kind", "message"}}``
 with a message a person can act on: 400 malformed request, 401 no or wrong token, 404
@@ -11,38 +17,39 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
+import functools
 import json
 import logging
 import math
-import re
 from collections.abc import Awaitable, Callable
-from pathlib import Path
 from typing import Any
 
-import cv2
-import numpy as np
-import tifffile
 from aiohttp import web
 
-from drivers.options import ConfigError
-from daemon.culture.readings import plot_series
+from daemon.archive import MAX_ID, AlertsQuery, ExportFile, FramesQuery, PreviewQuery
+from daemon.errors import BadRequest, Busy, NotFound
+from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination import CalibrationError
+from daemon.illumination.acquire import DarkRequest, FlatRequest
+from daemon.live import ImageQuery, StreamQuery
+from daemon.manual import MoveRequest
+from daemon.requests import parse_request, parse_text_request
+from daemon.station import plan_request
+from daemon.timelapse.plan import PlanOptions
 from daemon.web import API_PREFIX
 from daemon.web.auth import VIEW_COOKIE, Authenticator
 from daemon.web.checks import json_safe
-from daemon.web.errors import BadRequest, Busy, NotFound
 from daemon.web.keys import AUTH, METRICS, STATION
-from daemon.web.stream import BOUNDARY, DEFAULT_QUALITY, MIN_WIDTH_PX, to_8bit
-from daemon.web.views import latest_per_position
 from drivers.base import HardwareError, LimitError
+from drivers.options import ConfigError
 
 log = logging.getLogger(__name__)
 
 routes = web.RouteTableDef()
 MAX_BODY_BYTES = 64 * 1024
-EXPORT_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,200}$")
-PREVIEW_WIDTH_PX = 480
 READ_METHODS = ("GET", "HEAD", "OPTIONS")
+BOUNDARY = "phasewatchframe"
 
 
 # -- responses -------------------------------------------------------------------------
@@ -156,7 +163,7 @@ async def auth_middleware(
     )
 
 
-# -- request helpers -------------------------------------------------------------------
+# -- requests --------------------------------------------------------------------------
 
 
 async def read_json(request: web.Request) -> dict[str, Any]:
@@ -172,49 +179,77 @@ async def read_json(request: web.Request) -> dict[str, Any]:
     return body
 
 
-def int_param(request: web.Request, name: str, default: int | None, lo: int, hi: int) -> int | None:
-    text = request.query.get(name)
-    if text is None or text == "":
-        return default
-    try:
-        value = int(text)
-    except ValueError:
-        raise BadRequest(f"query parameter '{name}' must be a whole number from {lo} to {hi}, got {text!r}") from None
-    if not lo <= value <= hi:
-        raise BadRequest(f"query parameter '{name}' must be from {lo} to {hi}, got {value}")
-    return value
+def plan_body(body: dict[str, Any]) -> PlanOptions:
+    if not body:
+        raise BadRequest("send a plan: a JSON object with name, vessel, wells, interval_s and count or duration_s")
+    return plan_request(body)
 
 
-def float_param(request: web.Request, name: str, lo: float, hi: float) -> float | None:
-    text = request.query.get(name)
-    if text is None or text == "":
-        return None
-    try:
-        value = float(text)
-    except ValueError:
-        raise BadRequest(f"query parameter '{name}' must be a number from {lo:g} to {hi:g}, got {text!r}") from None
-    if not (math.isfinite(value) and lo <= value <= hi):
-        raise BadRequest(f"query parameter '{name}' must be from {lo:g} to {hi:g}, got {text}")
-    return value
+@dataclasses.dataclass(frozen=True)
+class Parses:
+    """The request dataclasses one handler parses: its JSON body and its query string."""
+
+    body: type | None = None
+    query: type | None = None
 
 
-MAX_ID = 2**31 - 1  # ids are SQLite row ids; anything larger names nothing
+Handler = Callable[[web.Request], Awaitable[web.StreamResponse]]
+#: What each route handler parses, for the OpenAPI check (tests/test_web_openapi.py).
+PARSED: dict[Handler, Parses] = {}
 
 
-def tl_id_of(request: web.Request) -> int:
-    text = request.match_info["id"]
+def takes(
+    *, body: type | None = None, query: type | None = None,
+    body_parser: Callable[[dict[str, Any]], Any] | None = None,
+) -> Callable[[Callable[..., Awaitable[web.StreamResponse]]], Handler]:
+    """Give the handler its body and then its query string parsed into these dataclasses
+    (:func:`~daemon.requests.parse_request`: BadRequest, so 400, naming the field);
+    ``body_parser`` parses the body another strict way (plans)."""
+
+    def wrap(fn: Callable[..., Awaitable[web.StreamResponse]]) -> Handler:
+        @functools.wraps(fn)
+        async def handler(request: web.Request) -> web.StreamResponse:
+            args: list[Any] = []
+            if body is not None:
+                raw = await read_json(request)
+                args.append(body_parser(raw) if body_parser is not None else parse_request(body, raw))
+            if query is not None:
+                args.append(parse_text_request(query, {k: request.query.getone(k) for k in request.query}))
+            return await fn(request, *args)
+
+        PARSED[handler] = Parses(body, query)
+        return handler
+
+    return wrap
+
+
+def _id(request: web.Request, name: str, what: str) -> int:
+    text = request.match_info[name]
     if len(text) > 10 or int(text) > MAX_ID:
-        raise NotFound(f"no time-lapse {text}; GET {API_PREFIX}/timelapses lists them")
+        raise NotFound(f"no {what} {text}")
     return int(text)
 
 
-def inside(root: Path, rel: str) -> Path:
-    """``root / rel`` resolved, refused unless it stays inside ``root`` (no way out of the data folder)."""
-    base = root.resolve()
-    path = (base / rel).resolve()
-    if not path.is_relative_to(base) or path == base:
-        raise NotFound("no such file in the data folder")
-    return path
+def tl_id_of(request: web.Request) -> int:
+    return _id(request, "id", "time-lapse")
+
+
+def frame_id_of(request: web.Request) -> int:
+    return _id(request, "frame_id", "frame")
+
+
+def _frame_links(tl_id: int, rows: list[dict[str, Any]], *, download: bool = True) -> list[dict[str, Any]]:
+    base = f"{API_PREFIX}/timelapses/{tl_id}/frames"
+    for r in rows:
+        if download:
+            r["download"] = f"{base}/{r['id']}"
+        r["preview"] = f"{base}/{r['id']}/preview.jpg"
+    return rows
+
+
+def _export_links(tl_id: int, files: list[ExportFile]) -> list[dict[str, Any]]:
+    return [{"name": f.name, "bytes": f.bytes, "download": f"{API_PREFIX}/timelapses/{tl_id}/exports/{f.name}"}
+            for f in files]
 
 
 # -- status and live view --------------------------------------------------------------
@@ -226,15 +261,9 @@ async def get_status(request: web.Request) -> web.Response:
 
 
 @routes.get(f"{API_PREFIX}/frame.jpg")
-async def get_frame(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    width = int_param(request, "width", None, MIN_WIDTH_PX, 8192)
-    quality = int_param(request, "quality", DEFAULT_QUALITY, 10, 95)
-    frame = await station.live.latest()
-    if frame is None:
-        why = station.live.last_error or "the camera has given no frame yet"
-        raise HardwareError(f"no frame to show: {why}")
-    body = await station.live.jpeg(frame, width, quality or DEFAULT_QUALITY)
+@takes(query=ImageQuery)
+async def get_frame(request: web.Request, query: ImageQuery) -> web.Response:
+    frame, body = await request.app[STATION].live.image(query)
     return web.Response(body=body, content_type="image/jpeg", headers={
         "Cache-Control": "no-store", "X-Frame-Source": frame.source, "X-Frame-Seq": str(frame.seq),
         "X-Frame-Time": f"{frame.t_s:.3f}",
@@ -242,43 +271,23 @@ async def get_frame(request: web.Request) -> web.Response:
 
 
 @routes.get(f"{API_PREFIX}/stream.mjpeg")
-async def get_stream(request: web.Request) -> web.StreamResponse:
-    """Multipart MJPEG: at most ``fps`` frames a second, optionally ``width`` px wide, ``frames`` in all."""
-    station = request.app[STATION]
-    live = station.live
-    fps = live.clamp_fps(float_param(request, "fps", 0.1, 1000.0))
-    width = int_param(request, "width", None, MIN_WIDTH_PX, 8192)
-    quality = int_param(request, "quality", DEFAULT_QUALITY, 10, 95) or DEFAULT_QUALITY
-    limit = int_param(request, "frames", None, 1, 1_000_000)
+@takes(query=StreamQuery)
+async def get_stream(request: web.Request, query: StreamQuery) -> web.StreamResponse:
+    """Multipart MJPEG: one JPEG part per frame, as live view paces them."""
+    live = request.app[STATION].live
     resp = web.StreamResponse(headers={
         "Content-Type": f"multipart/x-mixed-replace; boundary={BOUNDARY}",
-        "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{fps:g}",
+        "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{live.clamp_fps(query.fps):g}",
     })
     await resp.prepare(request)
-    loop = asyncio.get_running_loop()
-    sent, last_seq, next_at = 0, 0, 0.0
     try:
-        async with live.watching(fps):
-            while limit is None or sent < limit:
-                frame = await live.next_frame(last_seq, timeout_s=5.0)
-                if live.closed:
-                    break
-                if frame is None:
-                    continue
-                wait = next_at - loop.time()
-                if wait > 0:
-                    await asyncio.sleep(wait)
-                    frame = live.frame or frame  # send the newest, not the one that woke us
-                jpeg = await live.jpeg(frame, width, quality)
-                head = (
-                    f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
-                    f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\nX-Frame-Time: {frame.t_s:.3f}\r\n"
-                    f"X-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
-                )
-                await resp.write(head.encode("latin-1") + jpeg + b"\r\n")
-                sent += 1
-                last_seq = frame.seq
-                next_at = loop.time() + 1.0 / fps
+        async for frame, jpeg in live.stream(query):
+            head = (
+                f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
+                f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\nX-Frame-Time: {frame.t_s:.3f}\r\n"
+                f"X-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
+            )
+            await resp.write(head.encode("latin-1") + jpeg + b"\r\n")
     except (ConnectionResetError, HardwareError):
         return resp
     with contextlib.suppress(ConnectionResetError, RuntimeError):  # the client may be gone already
@@ -291,15 +300,15 @@ async def get_stream(request: web.Request) -> web.StreamResponse:
 
 
 @routes.post(f"{API_PREFIX}/stage/move")
-async def post_move(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    return json_response(await request.app[STATION].move(body))
+@takes(body=MoveRequest)
+async def post_move(request: web.Request, body: MoveRequest) -> web.Response:
+    return json_response((await request.app[STATION].move(body)).to_json())
 
 
 @routes.post(f"{API_PREFIX}/focus/auto")
-async def post_autofocus(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    return json_response(await request.app[STATION].autofocus(body))
+@takes(body=AutofocusRequest)
+async def post_autofocus(request: web.Request, body: AutofocusRequest) -> web.Response:
+    return json_response((await request.app[STATION].autofocus(body)).to_json())
 
 
 # -- calibration -----------------------------------------------------------------------
@@ -307,20 +316,19 @@ async def post_autofocus(request: web.Request) -> web.Response:
 
 @routes.get(f"{API_PREFIX}/calibration")
 async def get_calibration(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    return json_response({"frames": await asyncio.to_thread(station.calibrations)})
+    return json_response({"frames": await request.app[STATION].calibrations()})
 
 
 @routes.post(f"{API_PREFIX}/calibration/dark")
-async def post_dark(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    return json_response(await request.app[STATION].calibrate("dark", body), status=201)
+@takes(body=DarkRequest)
+async def post_dark(request: web.Request, body: DarkRequest) -> web.Response:
+    return json_response((await request.app[STATION].calibrate_dark(body)).to_json(), status=201)
 
 
 @routes.post(f"{API_PREFIX}/calibration/flat")
-async def post_flat(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    return json_response(await request.app[STATION].calibrate("flat", body), status=201)
+@takes(body=FlatRequest)
+async def post_flat(request: web.Request, body: FlatRequest) -> web.Response:
+    return json_response((await request.app[STATION].calibrate_flat(body)).to_json(), status=201)
 
 
 # -- plans and time-lapses -------------------------------------------------------------
@@ -328,47 +336,38 @@ async def post_flat(request: web.Request) -> web.Response:
 
 @routes.get(f"{API_PREFIX}/plans/demo")
 async def get_demo_plan(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    plan = station.demo_plan()
-    return json_response({"plan": plan, **(await station.check_plan(plan))})
+    plan, checked = await request.app[STATION].demo()
+    return json_response({"plan": plan, **checked.to_json()})
 
 
 @routes.post(f"{API_PREFIX}/plans/check")
-async def post_check_plan(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    return json_response(await request.app[STATION].check_plan(body))
+@takes(body=PlanOptions, body_parser=plan_body)
+async def post_check_plan(request: web.Request, body: PlanOptions) -> web.Response:
+    return json_response((await request.app[STATION].check_plan(body)).to_json())
 
 
 @routes.get(f"{API_PREFIX}/timelapses")
 async def get_timelapses(request: web.Request) -> web.Response:
     station = request.app[STATION]
-    return json_response({"timelapses": await asyncio.to_thread(station.timelapse_list),
-                          "active": station.active_summary()})
+    return json_response({"timelapses": await station.timelapses(), "active": station.active_summary()})
 
 
 @routes.post(f"{API_PREFIX}/timelapses")
-async def post_timelapse(request: web.Request) -> web.Response:
-    body = await read_json(request)
-    if not body:
-        raise BadRequest("send a plan: a JSON object with name, vessel, wells, interval_s and count or duration_s")
-    out = await request.app[STATION].start_timelapse(body)
-    return json_response(out, status=201, headers={"Location": f"{API_PREFIX}/timelapses/{out['id']}"})
+@takes(body=PlanOptions, body_parser=plan_body)
+async def post_timelapse(request: web.Request, body: PlanOptions) -> web.Response:
+    started = await request.app[STATION].start_timelapse(body)
+    return json_response(started.to_json(), status=201, headers={"Location": f"{API_PREFIX}/timelapses/{started.id}"})
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}")
 async def get_timelapse(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    return json_response(await asyncio.to_thread(station.timelapse_detail, tl_id_of(request)))
+    return json_response(await request.app[STATION].timelapse(tl_id_of(request)))
 
 
 async def _control(request: web.Request, action: str) -> web.Response:
     await read_json(request)  # no options yet, but a malformed body is still an error
-    done, state = await request.app[STATION].request(tl_id_of(request), action)
-    if done:
-        return json_response({**state, "message": f"time-lapse {state['id']} is {state['state']}"})
-    return json_response(
-        {**state, "message": f"{action} requested; it takes effect after the position being imaged"}, status=202
-    )
+    done = await request.app[STATION].control_timelapse(tl_id_of(request), action)
+    return json_response(done.to_json(), status=200 if done.done else 202)
 
 
 @routes.post(r"/api/v1/timelapses/{id:\d+}/pause")
@@ -387,172 +386,72 @@ async def post_abort(request: web.Request) -> web.Response:
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/frames")
-async def get_frames(request: web.Request) -> web.Response:
-    station = request.app[STATION]
+@takes(query=FramesQuery)
+async def get_frames(request: web.Request, query: FramesQuery) -> web.Response:
     tl_id = tl_id_of(request)
-    limit = int_param(request, "limit", 200, 1, 1000) or 200
-    offset = int_param(request, "offset", 0, 0, 10**9) or 0
-    tp = int_param(request, "tp", None, 0, 10**9)
-    position = request.query.get("position")
-
-    def pick() -> dict[str, Any]:
-        station.require_timelapse(tl_id)
-        rows = station.index.frames(tl_id)
-        if tp is not None:
-            rows = [r for r in rows if r["tp"] == tp]
-        if position:
-            rows = [r for r in rows if r["key"] == position]
-        page = rows[offset:offset + limit]
-        for r in page:
-            r["download"] = f"{API_PREFIX}/timelapses/{tl_id}/frames/{r['id']}"
-            r["preview"] = f"{API_PREFIX}/timelapses/{tl_id}/frames/{r['id']}/preview.jpg"
-        return {"total": len(rows), "offset": offset, "frames": page}
-
-    return json_response(await asyncio.to_thread(pick))
-
-
-def _frame_row(station: Any, tl_id: int, frame_id: int) -> dict[str, Any]:
-    station.require_timelapse(tl_id)
-    for r in station.index.frames(tl_id):
-        if r["id"] == frame_id:
-            return r
-    raise NotFound(f"time-lapse {tl_id} has no frame {frame_id}")
-
-
-def _frame_id(request: web.Request) -> int:
-    text = request.match_info["frame_id"]
-    if len(text) > 10 or int(text) > MAX_ID:
-        raise NotFound(f"no frame {text}")
-    return int(text)
+    page = await request.app[STATION].frames(tl_id, query)
+    return json_response({"total": page.total, "offset": page.offset, "frames": _frame_links(tl_id, page.frames)})
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/frames/{frame_id:\d+}")
 async def get_frame_file(request: web.Request) -> web.StreamResponse:
-    station = request.app[STATION]
-    row = await asyncio.to_thread(_frame_row, station, tl_id_of(request), _frame_id(request))
-    path = inside(station.data_dir, row["path"])
-    if not path.is_file():
-        raise NotFound(f"frame {row['id']} is indexed but its file {row['path']} is missing (status {row['status']})")
+    path = await request.app[STATION].frame_path(tl_id_of(request), frame_id_of(request))
     return web.FileResponse(path, headers={
         "Content-Type": "image/tiff", "Content-Disposition": f'attachment; filename="{path.name}"',
     })
 
 
-def preview_jpeg(path: Path, bit_depth: int, width_px: int) -> bytes:
-    pixels = tifffile.imread(path)
-    img = to_8bit(np.asarray(pixels), bit_depth)
-    if img.ndim != 2:
-        img = img.reshape(img.shape[-2:]) if img.size == img.shape[-1] * img.shape[-2] else img[..., 0]
-    h, w = img.shape
-    if width_px < w:
-        img = cv2.resize(img, (width_px, max(1, round(h * width_px / w))), interpolation=cv2.INTER_AREA)
-    ok, buf = cv2.imencode(".jpg", img, [cv2.IMWRITE_JPEG_QUALITY, DEFAULT_QUALITY])
-    if not ok:
-        raise ValueError("JPEG encoding failed")
-    return buf.tobytes()
-
-
 @routes.get(r"/api/v1/timelapses/{id:\d+}/frames/{frame_id:\d+}/preview.jpg")
-async def get_frame_preview(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    width = int_param(request, "width", PREVIEW_WIDTH_PX, MIN_WIDTH_PX, 8192) or PREVIEW_WIDTH_PX
-    row = await asyncio.to_thread(_frame_row, station, tl_id_of(request), _frame_id(request))
-    path = inside(station.data_dir, row["path"])
-    if not path.is_file():
-        raise NotFound(f"frame {row['id']} is indexed but its file {row['path']} is missing")
-    try:
-        body = await asyncio.to_thread(preview_jpeg, path, row["bit_depth"], width)
-    except (OSError, ValueError, tifffile.TiffFileError) as exc:
-        raise NotFound(f"frame {row['id']} cannot be read ({exc}); the start-up check will mark it") from None
+@takes(query=PreviewQuery)
+async def get_frame_preview(request: web.Request, query: PreviewQuery) -> web.Response:
+    body = await request.app[STATION].preview(tl_id_of(request), frame_id_of(request), query)
     return web.Response(body=body, content_type="image/jpeg", headers={"Cache-Control": "max-age=3600"})
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/latest")
 async def get_latest(request: web.Request) -> web.Response:
-    station = request.app[STATION]
     tl_id = tl_id_of(request)
-
-    def pick() -> dict[str, Any]:
-        station.require_timelapse(tl_id)
-        rows = latest_per_position(station.index.frames(tl_id))
-        for r in rows:
-            r["preview"] = f"{API_PREFIX}/timelapses/{tl_id}/frames/{r['id']}/preview.jpg"
-        return {"positions": rows}
-
-    return json_response(await asyncio.to_thread(pick))
+    rows = await request.app[STATION].latest(tl_id)
+    return json_response({"positions": _frame_links(tl_id, rows, download=False)})
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/series")
 async def get_series(request: web.Request) -> web.Response:
-    station = request.app[STATION]
+    return json_response(await request.app[STATION].series(tl_id_of(request)))
+
+
+@routes.get(r"/api/v1/timelapses/{id:\d+}/wells/{well}/readings")
+async def get_well_readings(request: web.Request) -> web.Response:
     tl_id = tl_id_of(request)
-
-    def build() -> dict[str, Any]:
-        row = station.require_timelapse(tl_id)
-        return {"id": tl_id, "t0_s": row["t0_s"], **plot_series(station.index, tl_id)}
-
-    return json_response(await asyncio.to_thread(build))
+    readings = await request.app[STATION].well_readings(tl_id, request.match_info["well"])
+    return json_response({"id": tl_id, "well": readings[0].well if readings else request.match_info["well"].upper(),
+                          "readings": [r.to_dict() for r in readings]})
 
 
 # -- exports ---------------------------------------------------------------------------
 
 
-def _export_dir(station: Any, tl_id: int) -> Path:
-    from daemon.storage.export import default_export_dir
-
-    station.require_timelapse(tl_id)
-    return default_export_dir(station.data_dir, station.index, tl_id)
-
-
-def _list_exports(folder: Path, tl_id: int) -> list[dict[str, Any]]:
-    if not folder.is_dir():
-        return []
-    return [
-        {"name": p.name, "bytes": p.stat().st_size, "download": f"{API_PREFIX}/timelapses/{tl_id}/exports/{p.name}"}
-        for p in sorted(folder.iterdir()) if p.is_file() and not p.name.startswith(".") and not p.is_symlink()
-    ]
-
-
 @routes.post(r"/api/v1/timelapses/{id:\d+}/exports")
 async def post_export(request: web.Request) -> web.Response:
-    from daemon.storage.export import export_csv, export_stacks
-
     await read_json(request)
-    station = request.app[STATION]
     tl_id = tl_id_of(request)
-
-    def run() -> dict[str, Any]:
-        folder = _export_dir(station, tl_id)
-        export_csv(station.index, tl_id, folder)
-        stacks = export_stacks(station.index, station.data_dir, tl_id, folder) if station.index.frames(tl_id) else []
-        return {
-            "files": _list_exports(folder, tl_id),
-            "stacks": [{"position": s.position, "time_points": s.time_points, "z_planes": s.z_planes,
-                        "skipped_time_points": s.skipped_time_points} for s in stacks],
-        }
-
-    return json_response(await asyncio.to_thread(run), status=201)
+    made = await request.app[STATION].make_exports(tl_id)
+    return json_response({
+        "files": _export_links(tl_id, made.files),
+        "stacks": [{"position": s.position, "time_points": s.time_points, "z_planes": s.z_planes,
+                    "skipped_time_points": s.skipped_time_points} for s in made.stacks],
+    }, status=201)
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/exports")
 async def get_exports(request: web.Request) -> web.Response:
-    station = request.app[STATION]
     tl_id = tl_id_of(request)
-    files = await asyncio.to_thread(lambda: _list_exports(_export_dir(station, tl_id), tl_id))
-    return json_response({"files": files})
+    return json_response({"files": _export_links(tl_id, await request.app[STATION].exports(tl_id))})
 
 
 @routes.get(r"/api/v1/timelapses/{id:\d+}/exports/{name}")
 async def get_export_file(request: web.Request) -> web.StreamResponse:
-    station = request.app[STATION]
-    tl_id = tl_id_of(request)
-    name = request.match_info["name"]
-    if not EXPORT_NAME.match(name) or ".." in name:
-        raise NotFound(f"no export called {name!r}; GET {API_PREFIX}/timelapses/{tl_id}/exports lists them")
-    folder = await asyncio.to_thread(_export_dir, station, tl_id)
-    path = inside(folder, name)
-    if path.parent != folder.resolve() or not path.is_file() or (folder / name).is_symlink():
-        raise NotFound(f"no export called {name!r}; POST {API_PREFIX}/timelapses/{tl_id}/exports makes them")
+    path = await request.app[STATION].export_path(tl_id_of(request), request.match_info["name"])
     kind = "text/csv" if path.suffix == ".csv" else "image/tiff" if path.suffix in (".tif", ".tiff") else "application/octet-stream"
     return web.FileResponse(path, headers={"Content-Type": kind, "Content-Disposition": f'attachment; filename="{path.name}"'})
 
@@ -561,11 +460,9 @@ async def get_export_file(request: web.Request) -> web.StreamResponse:
 
 
 @routes.get(f"{API_PREFIX}/alerts")
-async def get_alerts(request: web.Request) -> web.Response:
-    station = request.app[STATION]
-    limit = int_param(request, "limit", 100, 1, 1000) or 100
-    rows = await asyncio.to_thread(station.index.alerts)
-    return json_response({"alerts": rows[-limit:]})
+@takes(query=AlertsQuery)
+async def get_alerts(request: web.Request, query: AlertsQuery) -> web.Response:
+    return json_response({"alerts": await request.app[STATION].alerts(query)})
 
 
 @routes.post(f"{API_PREFIX}/session")

@@ -25,11 +25,11 @@ from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
 from daemon.web.auth import MAX_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
 from daemon.web.keys import AUTH, CONFIG, METRICS, SOCKETS, STATION
-from daemon.web.metrics import Metrics
+from daemon.metrics import Metrics
 from daemon.web.notify import Notifier
 from daemon.web.openapi import document
-from daemon.web.station import Station
-from daemon.web.stream import DEFAULT_MAX_FPS
+from daemon.station import Station
+from daemon.live import DEFAULT_MAX_FPS
 
 log = logging.getLogger(__name__)
 

@@ -17,7 +17,7 @@ from aiohttp import WSMsgType, web
 
 from daemon.web import API_PREFIX
 from daemon.web.checks import json_safe
-from daemon.web.errors import BadRequest
+from daemon.errors import BadRequest
 from daemon.web.keys import SOCKETS, STATION
 
 routes = web.RouteTableDef()

@@ -10,8 +10,8 @@ from aiohttp import web
 if TYPE_CHECKING:
     from daemon.web.app import ServeConfig
     from daemon.web.auth import Authenticator
-    from daemon.web.metrics import Metrics
-    from daemon.web.station import Station
+    from daemon.metrics import Metrics
+    from daemon.station import Station
 
 CONFIG: web.AppKey[ServeConfig] = web.AppKey("config")
 AUTH: web.AppKey[Authenticator] = web.AppKey("auth")

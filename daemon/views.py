@@ -7,12 +7,14 @@ from __future__ import annotations
 
 from typing import Any
 
+from daemon.states import FrameState
+
 
 def latest_per_position(frames: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """For each position, its newest frame (the analysed plane, corrected before raw)."""
     best: dict[str, dict[str, Any]] = {}
     for f in frames:
-        if f["status"] != "ok":
+        if f["status"] != FrameState.OK:
             continue
         cur = best.get(f["key"])
         rank = (f["tp"], f["confluence"] is not None, f["kind"] == "corrected")

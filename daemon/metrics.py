@@ -17,7 +17,7 @@ from prometheus_client.exposition import choose_encoder
 from prometheus_client.registry import Collector
 
 if TYPE_CHECKING:
-    from daemon.web.station import Station
+    from daemon.station import Station
 
 
 class Metrics:

@@ -1,17 +1,26 @@
-"""The station: one scope, its live view, its time-lapse, and who may use the hardware when.
+"""The station: the typed service behind every front end that drives the scope.
 
-Rules ("One hardware owner", docs/TARGETS.md):
+One :class:`Station` owns one scope, its live view and its time-lapse, and decides who
+may use the hardware when ("One hardware owner" in docs/TARGETS.md):
 
 * live view exposes only while the scope is free, so a time point pre-empts it;
-* manual control (moves, autofocus) is refused while a time-lapse runs, with the reason
-  and what to do; while it is paused, manual control is allowed;
+* manual control (moves, autofocus, calibration) is refused while a time-lapse runs,
+  with the reason and what to do; while it is paused, manual control is allowed;
 * manual control is refused while another job holds the scope (an autofocus, a time
   point), naming the job; live view gives way within one frame;
 * one time-lapse at a time per scope.
 
-The station does not know HTTP: refusals are :class:`Busy` (409), unknown things
-:class:`NotFound` (404), malformed requests :class:`BadRequest` (400). Driver errors
-(LimitError, HardwareError) and plan errors (ConfigError) pass through to the API layer.
+Every operation takes a request dataclass (:mod:`daemon.requests`: parsed strictly by
+the profile loader's rules) and returns a typed result (:mod:`daemon.results`). The work
+itself is done by the domain functions the command line calls too
+(:func:`daemon.manual.apply_move`, :func:`daemon.focus.autofocus.autofocus`,
+:func:`daemon.illumination.acquire.take_flat`, ...), which hold the checks that need the
+profile; the data folder's read side is :class:`daemon.archive.Archive`.
+
+The station knows no HTTP: refusals are :class:`~daemon.errors.Busy`,
+:class:`~daemon.errors.NotFound` and :class:`~daemon.errors.BadRequest`; driver errors
+(LimitError, HardwareError), plan errors (ConfigError) and calibration errors pass
+through to the front end.
 """
 
 from __future__ import annotations
@@ -25,24 +34,38 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from drivers.options import ConfigError
+from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
+from daemon.errors import Busy
+from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
+from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
+from daemon.illumination.calibration import CalibrationStore
+from daemon.live import LIVE_HOLDER, LiveView
+from daemon.manual import MoveRequest, apply_move, resolve_move
+from daemon.results import (
+    CalibrationStored,
+    ControlDone,
+    FocusDone,
+    MoveDone,
+    PlanChecked,
+    TimelapseStarted,
+    position_json,
+)
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.timelapse import timing
 from daemon.events import Event, EventHub
 from daemon.states import UNFINISHED_STATES as UNFINISHED
-from daemon.web.checks import finite_number, only_keys
-from daemon.web.errors import BadRequest, Busy, NotFound
-from daemon.web.stream import LIVE_HOLDER, LiveView
-from daemon.web.views import latest_per_position
-from drivers.base import HardwareError, Position
+from daemon.states import TimelapseState, TimePointState
+from drivers.base import HardwareError, LimitError, Position
+from drivers.options import ConfigError, load_section
 
 if TYPE_CHECKING:
+    from daemon.culture.readings import WellReading
+    from daemon.metrics import Metrics
     from daemon.profile import Profile
     from daemon.scope import Scope
-    from daemon.timelapse.plan import Plan, PlannedPosition
+    from daemon.timelapse.plan import Plan, PlannedPosition, PlanOptions
     from daemon.timelapse.scheduler import Scheduler
-    from daemon.web.metrics import Metrics
 
 log = logging.getLogger(__name__)
 
@@ -52,12 +75,7 @@ LIVE_YIELD_S = 3.0
 REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
-
-
-def _position_dict(p: Position | None) -> dict[str, float] | None:
-    if p is None:
-        return None
-    return {"x_um": round(p.x_um, 3), "y_um": round(p.y_um, 3), "z_um": round(p.z_um, 3)}
+ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "abort": TimelapseState.ABORTED}
 
 
 class Station:
@@ -76,6 +94,8 @@ class Station:
         self.scope = scope
         self.data_dir = data_dir
         self.index = index
+        self.archive = Archive(data_dir, index)
+        self.calibration = CalibrationStore(data_dir / "calibration")
         self.metrics = metrics
         self.reserve_mb = reserve_mb
         self.hub = EventHub()
@@ -183,7 +203,7 @@ class Station:
     def refusal(self) -> str | None:
         """Why manual control is refused right now, or None when it is allowed."""
         s = self.active()
-        if s is not None and s.state == "running":
+        if s is not None and s.state == TimelapseState.RUNNING:
             return (
                 f"time-lapse {s.id} '{s.plan.name}' is running and owns the scope; pause it first "
                 f"(POST /api/v1/timelapses/{s.id}/pause), then move or focus"
@@ -210,52 +230,31 @@ class Station:
     def _hardware_error(self, where: str) -> None:
         self.metrics.hardware_errors.labels(where).inc()
 
-    # -- manual control ----------------------------------------------------------------
-
-    async def move(self, body: dict[str, Any]) -> dict[str, Any]:
-        """Absolute or relative move in um, or to a well centre; soft limits checked by the driver."""
-        only_keys(body, ("mode", "x_um", "y_um", "z_um", "well"))
-        mode = body.get("mode", "absolute")
-        if mode not in ("absolute", "relative"):
-            raise BadRequest(f"'mode' must be 'absolute' or 'relative', got {mode!r}")
-        well = body.get("well")
-        if well is not None and not isinstance(well, str):
-            raise BadRequest(f"'well' must be a well name such as 'B3', got {well!r}")
-        axes = {k: finite_number(body, k) for k in ("x_um", "y_um", "z_um")}
-        if well is None and all(v is None for v in axes.values()):
-            raise BadRequest("give at least one of x_um, y_um, z_um (micrometres), or a well such as 'B3'")
-        if well is not None:
-            if mode == "relative" or axes["x_um"] is not None or axes["y_um"] is not None:
-                raise BadRequest("a move to a well takes no x_um/y_um and no relative mode (z_um may be given)")
-            axes["x_um"], axes["y_um"] = await asyncio.to_thread(self.well_centre_um, well)
-        async with self.control("manual move (API)") as scope:
+    @contextlib.asynccontextmanager
+    async def hardware(self, holder: str) -> AsyncIterator[Scope]:
+        """:meth:`control`, counting hardware faults (not soft-limit refusals) for the metrics."""
+        async with self.control(holder) as scope:
             try:
-                if mode == "relative":
-                    here = await scope.position()
-                    target = {
-                        "x_um": None if axes["x_um"] is None else here.x_um + axes["x_um"],
-                        "y_um": None if axes["y_um"] is None else here.y_um + axes["y_um"],
-                        "z_um": None if axes["z_um"] is None else here.z_um + axes["z_um"],
-                    }
-                else:
-                    target = axes
-                pos = await scope.move_to(**target)
+                yield scope
             except HardwareError as exc:
-                if not _is_limit(exc):
+                if not isinstance(exc, LimitError):
                     self._hardware_error("api")
                 raise
-        out = {"position_um": _position_dict(pos), "well": self.well_here(pos)}
-        self.publish({"type": "stage", "position_um": out["position_um"], "well": out["well"]})
-        return out
 
-    def well_centre_um(self, well: str) -> tuple[float, float]:
-        from daemon.vessels.stage_map import well_position_um
+    # -- manual control ----------------------------------------------------------------
 
-        return well_position_um(self.data_dir, self.profile, well)
+    async def move(self, request: MoveRequest) -> MoveDone:
+        """Absolute or relative move in um, or to a well centre; soft limits checked by the driver."""
+        target = await asyncio.to_thread(resolve_move, request, self.profile, self.data_dir)
+        async with self.hardware("manual move (API)") as scope:
+            pos = await apply_move(scope, target)
+        done = MoveDone(pos, await asyncio.to_thread(self.well_here, pos))
+        self.publish({"type": "stage", **done.to_json()})
+        return done
 
     def well_here(self, pos: Position | None) -> str | None:
         """The well under the objective by the vessel-to-stage map; None between wells, off
-        the vessel, or while no map has been taught."""
+        the vessel, or while no map has been taught (blocking: reads the map)."""
         from daemon.vessels.stage_map import well_at_stage
 
         if pos is None:
@@ -265,113 +264,65 @@ class Station:
         except ConfigError:
             return None
 
-    async def autofocus(self, body: dict[str, Any]) -> dict[str, Any]:
-        from daemon.focus.autofocus import FocusPoint, autofocus
-        from daemon.focus.metrics import METRICS
-
-        only_keys(body, ("metric", "range_um", "centre_z_um"))
-        metric = body.get("metric", "variance_of_laplacian")
-        if metric not in METRICS:
-            raise BadRequest(f"'metric' must be one of {', '.join(sorted(METRICS))}, got {metric!r}")
-        range_um = finite_number(body, "range_um", positive=True)
-        centre = finite_number(body, "centre_z_um")
-        f = self.profile.focus
-        if range_um is not None and range_um > f.z_safe_max_um - f.z_min_um:
-            raise BadRequest(f"'range_um' {range_um:g} is wider than the focus travel {f.z_safe_max_um - f.z_min_um:g} um")
-        if centre is not None and not f.z_min_um <= centre <= f.z_safe_max_um:
-            raise BadRequest(f"'centre_z_um' must lie within the focus limits {f.z_min_um:g}..{f.z_safe_max_um:g} um")
+    async def autofocus(self, request: AutofocusRequest) -> FocusDone:
+        """One cold autofocus here; its focus points stream as events while it runs."""
+        request.check(self.profile)  # before the scope is claimed or any event sent (autofocus checks again)
         run_id = int(time.time() * 1000)
 
         def point(p: FocusPoint) -> None:
             self.publish({"type": "focus_point", "source": "manual", "run": run_id, **p.to_dict()})
 
         self.publish({"type": "focus_start", "source": "manual", "run": run_id})
-        async with self.control("autofocus (API)") as scope:
-            try:
-                result = await autofocus(scope, metric=metric, centre_z_um=centre, range_um=range_um, on_point=point)
-            except HardwareError as exc:
-                if not _is_limit(exc):
-                    self._hardware_error("api")
-                raise
+        async with self.hardware("autofocus (API)") as scope:
+            result = await autofocus_as_asked(scope, request, on_point=point)
             pos = scope.last_position
         self.metrics.autofocus_runs.labels("api").inc()
         if not result.found:
             self.metrics.autofocus_failures.labels("api").inc()
         elif math.isfinite(result.score):
             self.metrics.last_focus_score.set(result.score)
-        out = {**result.to_dict(), "run": run_id, "position_um": _position_dict(pos)}
-        self.last_focus = out
-        self.publish({"type": "focus_result", "source": "manual", **out})
+        done = FocusDone(result, run_id, pos)
+        self.last_focus = done.to_json()
+        self.publish({"type": "focus_result", "source": "manual", **self.last_focus})
+        return done
+
+    # -- calibration -------------------------------------------------------------------
+
+    async def calibrate_dark(self, request: DarkRequest) -> CalibrationStored:
+        """Average frames with the lamp off and store them for this exposure and gain."""
+        async with self.hardware("dark calibration (API)") as scope:
+            taken = await take_dark(scope, self.calibration, request)
+        return self._stored(taken)
+
+    async def calibrate_flat(self, request: FlatRequest) -> CalibrationStored:
+        """Average the blank field under the objective and store it as the flat field."""
+        await asyncio.to_thread(check_flat, self.calibration, self.profile, request)  # before claiming the scope
+        async with self.hardware("flat calibration (API)") as scope:
+            taken = await take_flat(scope, self.calibration, request, where="blank field chosen over the API")
+        return self._stored(taken)
+
+    def _stored(self, taken: Taken) -> CalibrationStored:
+        out = CalibrationStored(taken.kind, str(taken.path.relative_to(self.data_dir)), taken.exposure_ms,
+                                taken.gain_db, taken.frames, taken.quality)
+        self.publish({"type": "calibration", **out.to_json()})
         return out
 
-    async def calibrate(self, kind: str, body: dict[str, Any]) -> dict[str, Any]:
-        """Take and store a dark (lamp off) or flat (blank field under the objective) calibration frame."""
-        from daemon.illumination import CalibrationError
-        from daemon.illumination.calibration import CalibrationStore, acquire_dark, acquire_flat
-
-        only_keys(body, ("frames", "exposure_ms", "gain_db", "defocus_um") if kind == "flat" else ("frames", "exposure_ms", "gain_db"))
-        frames = body.get("frames", 16)
-        if isinstance(frames, bool) or not isinstance(frames, int) or not 1 <= frames <= 256:
-            raise BadRequest(f"'frames' must be a whole number from 1 to 256, got {frames!r}")
-        cam = self.profile.camera
-        exposure = finite_number(body, "exposure_ms", positive=True) or cam.exposure_ms
-        gain = finite_number(body, "gain_db")
-        gain = cam.gain_db if gain is None else gain
-        from daemon.web.checks import camera_limits
-
-        for name, value in (("exposure_ms", exposure), ("gain_db", gain)):
-            lo, hi, unit = camera_limits(name)
-            if not lo <= value <= hi:
-                raise BadRequest(f"'{name}' must be from {lo:g} to {hi:g} {unit} ([camera] limits), got {value:g}")
-        defocus = finite_number(body, "defocus_um")
-        store = CalibrationStore(self.data_dir / "calibration")
-        if kind == "flat" and await asyncio.to_thread(store.find_dark, self.profile, exposure, gain) is None:
-            raise CalibrationError(store.describe_missing(self.profile, exposure, gain))
-        async with self.control(f"{kind} calibration (API)") as scope:
-            try:
-                if kind == "dark":
-                    image = await acquire_dark(scope, frames=frames, exposure_ms=exposure, gain_db=gain)
-                else:
-                    image = await acquire_flat(scope, frames=frames, exposure_ms=exposure, gain_db=gain, defocus_um=defocus)
-            except HardwareError as exc:
-                if not _is_limit(exc):
-                    self._hardware_error("api")
-                raise
-            t_s = scope.clock.now()
-            pos = scope.last_position
-        common = {"exposure_ms": exposure, "gain_db": gain, "frames": frames,
-                  "bit_depth": cam.bit_depth, "acquired_t_s": t_s}
-        if kind == "dark":
-            path = await asyncio.to_thread(store.save_dark, self.profile, image, **common)
-        else:
-            extra = {"position_um": _position_dict(pos), "where": "blank field chosen over the API"}
-            method = "blank field, averaged" + (f", defocused {defocus:g} um" if defocus else "")
-            path = await asyncio.to_thread(store.save_flat, self.profile, image, method=method, extra=extra, **common)
-        meta = next((m for m in await asyncio.to_thread(store.list_sets, self.profile) if m["path"] == str(path)), {})
-        out = {"kind": kind, "file": str(path.relative_to(self.data_dir)), "exposure_ms": exposure, "gain_db": gain,
-               "frames": frames, "quality": meta.get("quality")}
-        self.publish({"type": "calibration", **out})
-        return out
-
-    def calibrations(self) -> list[dict[str, Any]]:
-        from daemon.illumination.calibration import CalibrationStore
-
-        rows = CalibrationStore(self.data_dir / "calibration").list_sets(self.profile)
+    async def calibrations(self) -> list[dict[str, Any]]:
+        """The stored dark and flat frames of this profile."""
+        rows = await asyncio.to_thread(self.calibration.list_sets, self.profile)
         keep = ("kind", "method", "objective", "exposure_ms", "gain_db", "frames_averaged", "acquired_utc", "quality")
         return [{k: m.get(k) for k in keep} for m in rows]
 
     # -- time-lapses ---------------------------------------------------------------------
 
-    def _plan_and_positions(self, raw: Any) -> tuple[Plan, list[PlannedPosition], list[str], dict[str, Any]]:
-        from daemon.timelapse.plan import Plan, check_fits, estimate_plan, field_of_view_um, plan_positions
+    def _plan_and_positions(self, options: PlanOptions) -> tuple[Plan, list[PlannedPosition], list[str], dict[str, Any]]:
+        from daemon.timelapse.plan import check_fits, estimate_plan, field_of_view_um, plan_from_options, plan_positions
         from daemon.vessels.stage_map import load_stage_map
 
-        if not isinstance(raw, dict):
-            raise BadRequest("the plan must be a JSON object with the keys of a plan file (name, vessel, wells, ...)")
-        if "vessel_file" in raw:
+        if options.vessel_file:
             # A plan over the network must not make the daemon read a file of the sender's choosing.
             raise ConfigError("plan", "", "vessel_file", "not accepted over the network; use a built-in vessel name")
-        plan = Plan.from_dict(raw, file="plan")
+        plan = plan_from_options(options, file="plan")
         smap = load_stage_map(self.data_dir, self.profile)
         positions = plan_positions(plan, plan.get_vessel(), smap, field_of_view_um(self.profile))
         warnings = check_fits(self.profile, plan, positions)
@@ -385,11 +336,12 @@ class Station:
         }
         return plan, positions, warnings, estimate
 
-    async def check_plan(self, raw: Any) -> dict[str, Any]:
-        plan, positions, warnings, estimate = await asyncio.to_thread(self._plan_and_positions, raw)
-        return {"plan": plan.to_dict(), "positions": [p.key for p in positions], "warnings": warnings, "estimate": estimate}
+    async def check_plan(self, options: PlanOptions) -> PlanChecked:
+        """Where a plan images, whether it fits its interval, and how long it takes; starts nothing."""
+        plan, positions, warnings, estimate = await asyncio.to_thread(self._plan_and_positions, options)
+        return PlanChecked(plan, [p.key for p in positions], warnings, estimate)
 
-    async def start_timelapse(self, raw: Any) -> dict[str, Any]:
+    async def start_timelapse(self, options: PlanOptions) -> TimelapseStarted:
         from daemon.timelapse.scheduler import Scheduler
 
         s = self.active()
@@ -398,7 +350,7 @@ class Station:
                 f"time-lapse {s.id} '{s.plan.name}' is {s.state}; one time-lapse at a time: "
                 f"abort it (POST /api/v1/timelapses/{s.id}/abort) or wait until it completes"
             )
-        plan, positions, warnings, estimate = await asyncio.to_thread(self._plan_and_positions, raw)
+        plan, positions, warnings, estimate = await asyncio.to_thread(self._plan_and_positions, options)
         if self.active() is not None:  # another request started one while this was checked
             raise Busy("another time-lapse was started meanwhile; one time-lapse at a time")
         scheduler = Scheduler.create(
@@ -406,34 +358,43 @@ class Station:
             warnings=warnings, on_event=self._on_event,
         )
         self._launch(scheduler)
-        return {"id": scheduler.id, "name": plan.name, "state": scheduler.state, "warnings": warnings, "estimate": estimate}
+        return TimelapseStarted(scheduler.id, plan.name, scheduler.state, warnings, estimate)
 
-    async def request(self, tl_id: int, action: str) -> tuple[bool, dict[str, Any]]:
-        """Pause, resume or abort; returns (took effect already, the time-lapse's state)."""
-        row = await asyncio.to_thread(self.index.timelapse, tl_id)
-        if row is None:
-            raise NotFound(f"no time-lapse {tl_id}; GET /api/v1/timelapses lists them")
-        s = self.scheduler if self.scheduler is not None and self.scheduler.id == tl_id else None
-        state = s.state if s is not None and self.active() is s else row["state"]
+    def _state_of(self, tl_id: int, indexed: str) -> str:
+        """A time-lapse's state: the running scheduler's when this station runs it, else the index's."""
+        s = self._running_here(tl_id)
+        return s.state if s is not None else indexed
+
+    def _running_here(self, tl_id: int) -> Scheduler | None:
+        s = self.scheduler
+        return s if s is not None and s.id == tl_id and self.active() is s else None
+
+    async def control_timelapse(self, tl_id: int, action: str) -> ControlDone:
+        """Pause, resume or abort (``action``); waits a little for it to take effect."""
+        if action not in ACTIONS:
+            raise ValueError(f"unknown action {action!r}")
+        row = await asyncio.to_thread(self.archive.timelapse, tl_id)
+        s = self._running_here(tl_id)
+        state = s.state if s is not None else row["state"]
         if state not in UNFINISHED:
             raise Busy(f"time-lapse {tl_id} is {state}; there is nothing to {action}")
-        wanted = {"pause": "paused", "resume": "running", "abort": "aborted"}[action]
+        wanted = ACTIONS[action]
         if state == wanted:
             raise Busy(f"time-lapse {tl_id} is already {state}")
-        if s is None or self.active() is not s:
+        if s is None:
             if action != "abort":
                 raise Busy(
                     f"time-lapse {tl_id} belongs to profile {row['profile_name']!r} and is not run by this daemon; "
                     f"start the daemon with --profile {row['profile_name']} to {action} it"
                 )
-            await asyncio.to_thread(self.index.set_state, tl_id, "aborted", reason="aborted by request",
+            await asyncio.to_thread(self.index.set_state, tl_id, TimelapseState.ABORTED, reason="aborted by request",
                                     finished_s=self.scope.clock.now())
-            return True, {"id": tl_id, "state": "aborted"}
+            return ControlDone(tl_id, action, TimelapseState.ABORTED, True)
         {"pause": s.pause, "resume": s.resume_running, "abort": s.abort}[action]()
         deadline = time.monotonic() + REQUEST_WAIT_S
         while s.state != wanted and time.monotonic() < deadline and not (self._task and self._task.done()):
             await asyncio.sleep(0.05)
-        return s.state == wanted, {"id": tl_id, "state": s.state}
+        return ControlDone(tl_id, action, s.state, s.state == wanted)
 
     def progress_summary(self) -> dict[str, Any] | None:
         """For metrics: the station's latest time-lapse, its state and share of time points over
@@ -443,7 +404,7 @@ class Station:
             return None
         counts: dict[str, int] = {}
         for p in self.index.time_points(s.id):
-            if p["status"] != "running":
+            if p["status"] != TimePointState.RUNNING:
                 counts[p["status"]] = counts.get(p["status"], 0) + 1
         over = sum(counts.values())
         return {"id": s.id, "state": s.state, "ratio": over / s.count if s.count else 0.0, "time_points": counts}
@@ -468,59 +429,58 @@ class Station:
             return None
         return {"id": s.id, "name": s.plan.name, "state": s.state, "interval_s": s.interval_s, **self._progress_of(s)}
 
-    def timelapse_detail(self, tl_id: int) -> dict[str, Any]:
-        """Everything about one time-lapse (blocking: index reads; call through a thread)."""
-        row = self.index.timelapse(tl_id)
-        if row is None:
-            raise NotFound(f"no time-lapse {tl_id}; GET /api/v1/timelapses lists them")
-        import json
-
-        points = self.index.time_points(tl_id)
-        frames = self.index.frames(tl_id)
-        statuses = {st: sum(p["status"] == st for p in points) for st in ("done", "partial", "failed", "missed", "running")}
-        over = statuses["done"] + statuses["partial"] + statuses["failed"] + statuses["missed"]
-        s = self.scheduler if self.scheduler is not None and self.scheduler.id == tl_id else None
-        state = s.state if s is not None and self.active() is s else row["state"]
-        spec = json.loads(row["plan_json"])
-        out = {
-            "id": tl_id, "name": row["name"], "state": state, "stop_reason": row["stop_reason"],
-            "profile": row["profile_name"], "t0_s": row["t0_s"], "created_s": row["created_s"],
-            "finished_s": row["finished_s"], "interval_s": row["interval_s"], "count": row["count"],
-            "positions": [p["key"] for p in spec.get("positions", [])], "plan": spec.get("plan"),
-            "time_points": statuses, "progress_ratio": over / row["count"] if row["count"] else 0.0,
-            "frames": len(frames), "frames_not_ok": sum(f["status"] != "ok" for f in frames),
-            "missed": [{"tp": p["tp"], "planned_s": p["planned_s"], "reason": p["reason"]} for p in points if p["status"] == "missed"],
-            "time_point_list": points[-200:],
-            "failed_positions": [p for p in self.index.positions(tl_id) if p["status"] != "ok"][-100:],
-            "alerts": self.index.alerts(tl_id)[-200:],
-            "latest": latest_per_position(frames),
-            "clock_s": self.scope.clock.now(),
-            "running_here": s is not None and self.active() is s,
-        }
-        if out["running_here"] and s is not None:
+    def _detail(self, tl_id: int) -> dict[str, Any]:
+        out = self.archive.detail(tl_id)
+        s = self._running_here(tl_id)
+        out["clock_s"] = self.scope.clock.now()
+        out["running_here"] = s is not None
+        if s is not None:
+            out["state"] = s.state
             out["progress"] = self._progress_of(s)
         return out
 
-    def timelapse_list(self) -> list[dict[str, Any]]:
-        rows = []
-        for row in self.index.timelapses():
-            points = self.index.time_points(row["id"])
-            over = sum(p["status"] != "running" for p in points)
-            s = self.scheduler if self.scheduler is not None and self.scheduler.id == row["id"] else None
-            rows.append({
-                "id": row["id"], "name": row["name"],
-                "state": s.state if s is not None and self.active() is s else row["state"],
-                "profile": row["profile_name"], "t0_s": row["t0_s"], "interval_s": row["interval_s"],
-                "count": row["count"], "positions": row["n_positions"], "time_points_over": over,
-                "missed": sum(p["status"] == "missed" for p in points), "stop_reason": row["stop_reason"],
-            })
-        return rows
+    async def timelapse(self, tl_id: int) -> dict[str, Any]:
+        """Everything about one time-lapse: progress, time points, alerts, latest frames."""
+        return await asyncio.to_thread(self._detail, tl_id)
 
-    def require_timelapse(self, tl_id: int) -> dict[str, Any]:
-        row = self.index.timelapse(tl_id)
-        if row is None:
-            raise NotFound(f"no time-lapse {tl_id}; GET /api/v1/timelapses lists them")
-        return row
+    def _summaries(self) -> list[dict[str, Any]]:
+        return [{**row, "state": self._state_of(row["id"], row["state"])} for row in self.archive.summaries()]
+
+    async def timelapses(self) -> list[dict[str, Any]]:
+        """Every time-lapse of the data folder, with the running one's live state."""
+        return await asyncio.to_thread(self._summaries)
+
+    # -- the data folder (read side) ----------------------------------------------------
+
+    async def frames(self, tl_id: int, query: FramesQuery) -> FramePage:
+        return await asyncio.to_thread(self.archive.frames, tl_id, query)
+
+    async def frame_path(self, tl_id: int, frame_id: int) -> Path:
+        return await asyncio.to_thread(self.archive.frame_path, tl_id, frame_id)
+
+    async def preview(self, tl_id: int, frame_id: int, query: PreviewQuery) -> bytes:
+        return await asyncio.to_thread(self.archive.preview, tl_id, frame_id, query)
+
+    async def latest(self, tl_id: int) -> list[dict[str, Any]]:
+        return await asyncio.to_thread(self.archive.latest, tl_id)
+
+    async def series(self, tl_id: int) -> dict[str, Any]:
+        return await asyncio.to_thread(self.archive.series, tl_id)
+
+    async def well_readings(self, tl_id: int, well: str) -> list[WellReading]:
+        return await asyncio.to_thread(self.archive.well_readings, tl_id, well)
+
+    async def exports(self, tl_id: int) -> list[ExportFile]:
+        return await asyncio.to_thread(self.archive.exports, tl_id)
+
+    async def make_exports(self, tl_id: int) -> ExportsMade:
+        return await asyncio.to_thread(self.archive.make_exports, tl_id)
+
+    async def export_path(self, tl_id: int, name: str) -> Path:
+        return await asyncio.to_thread(self.archive.export_path, tl_id, name)
+
+    async def alerts(self, query: AlertsQuery) -> list[dict[str, Any]]:
+        return await asyncio.to_thread(self.archive.alerts, query)
 
     # -- status ------------------------------------------------------------------------
 
@@ -532,7 +492,7 @@ class Station:
         if holder is not None and holder != LIVE_HOLDER:
             return "busy"
         if s is not None:
-            return "paused" if s.state == "paused" else "waiting"
+            return "paused" if s.state == TimelapseState.PAUSED else "waiting"
         if self.live.viewers:
             return "live"
         return "idle"
@@ -552,7 +512,7 @@ class Station:
             "state": self.state_word(),
             "holder": scope.holder,
             "manual_control": {"allowed": self.refusal() is None, "reason": self.refusal()},
-            "position_um": _position_dict(pos),
+            "position_um": position_json(pos),
             "well": self.well_here(pos),
             "limits_um": {
                 "x": [p.stage.x_min_um, p.stage.x_max_um],
@@ -597,7 +557,17 @@ class Station:
         }
 
 
-def _is_limit(exc: HardwareError) -> bool:
-    from drivers.base import LimitError
+    async def demo(self) -> tuple[dict[str, Any], PlanChecked]:
+        """The demo plan and its check against this scope."""
+        plan = self.demo_plan()
+        return plan, await self.check_plan(plan_request(plan))
 
-    return isinstance(exc, LimitError)
+
+def plan_request(body: Any) -> PlanOptions:
+    """A plan's options from a JSON object, by the plan file's own strict rules. Its errors
+    are ConfigError: a plan is refused (422) as a whole, like a plan file, rather than
+    malformed."""
+    from daemon.timelapse.plan import PlanOptions
+
+    return load_section(PlanOptions, body, file="plan", section="")
+

@@ -1,4 +1,4 @@
-"""Live view: one capture loop shared by every viewer, JPEG frames and the MJPEG stream.
+"""Live view: one capture loop shared by every viewer, and its frames as JPEG.
 
 The loop runs only while someone watches (light harms living cells), at the highest
 rate any viewer asked for, capped by the server. It exposes a frame only when the scope
@@ -23,6 +23,7 @@ import cv2
 import numpy as np
 
 from drivers.base import Frame, HardwareError
+from drivers.options import option
 
 if TYPE_CHECKING:
     from daemon.scope import Scope
@@ -30,13 +31,35 @@ if TYPE_CHECKING:
 log = logging.getLogger(__name__)
 
 LIVE_HOLDER = "live view"
-BOUNDARY = "phasewatchframe"
 DEFAULT_FPS = 10.0
 DEFAULT_MAX_FPS = 20.0
 DEFAULT_QUALITY = 80
 MIN_WIDTH_PX = 32
+MAX_WIDTH_PX = 8192
 # After a camera fault the loop waits before trying again (bounded, doubling).
 RETRY_FIRST_S, RETRY_MAX_S = 0.5, 8.0
+# A viewer waits this long for the next frame before looking again (and noticing a close).
+NEXT_FRAME_WAIT_S = 5.0
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ImageQuery:
+    """How a viewer wants the latest frame: its width and JPEG quality."""
+
+    width: int | None = option(None, doc="reduce the image to this width (default: full size)",
+                               min=MIN_WIDTH_PX, max=MAX_WIDTH_PX, unit="px")
+    quality: int = option(DEFAULT_QUALITY, doc="JPEG quality", min=10, max=95)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class StreamQuery(ImageQuery):
+    """A viewer of the live stream: a frame-rate cap (the server caps it too), size, length."""
+
+    fps: float | None = option(None, doc=f"frame-rate cap (default {DEFAULT_FPS:g}; the server caps it too)",
+                               min=0.1, max=1000.0, unit="frames/s")
+    frames: int | None = option(None, doc="end the stream after this many frames (default: never)",
+                                min=1, max=1_000_000)
+    t: str | None = option(None, doc="ignored: lets a browser open a fresh stream under a new address")
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -232,6 +255,36 @@ class LiveView:
                     retry_s = min(retry_s * 2, RETRY_MAX_S)
                     continue
             await asyncio.sleep(max(0.0, period_s - (time.monotonic() - started)))
+
+    async def stream(self, query: StreamQuery) -> AsyncIterator[tuple[LiveFrame, bytes]]:
+        """Frames for one viewer as JPEG, at most ``fps`` a second (the newest frame each
+        time, never a backlog), until ``frames`` are sent or live view closes."""
+        fps = self.clamp_fps(query.fps)
+        loop = asyncio.get_running_loop()
+        sent, last_seq, next_at = 0, 0, 0.0
+        async with self.watching(fps):
+            while query.frames is None or sent < query.frames:
+                frame = await self.next_frame(last_seq, timeout_s=NEXT_FRAME_WAIT_S)
+                if self.closed:
+                    return
+                if frame is None:
+                    continue
+                wait = next_at - loop.time()
+                if wait > 0:
+                    await asyncio.sleep(wait)
+                    frame = self.frame or frame  # send the newest, not the one that woke us
+                yield frame, await self.jpeg(frame, query.width, query.quality)
+                sent += 1
+                last_seq = frame.seq
+                next_at = loop.time() + 1.0 / fps
+
+    async def image(self, query: ImageQuery) -> tuple[LiveFrame, bytes]:
+        """A recent frame as JPEG; HardwareError saying why when there is none."""
+        frame = await self.latest()
+        if frame is None:
+            why = self.last_error or "the camera has given no frame yet"
+            raise HardwareError(f"no frame to show: {why}")
+        return frame, await self.jpeg(frame, query.width, query.quality)
 
     # -- JPEG --------------------------------------------------------------------------
 

@@ -1,0 +1,31 @@
+"""Refusals of the service and the domain functions, the same for every front end.
+
+The web API turns each into its HTTP status (daemon/web/api.py): :class:`BadRequest`
+400, :class:`NotFound` 404, :class:`Busy` 409. The command line prints each as one line
+and exits with status 2 (daemon/cli.py).
+"""
+
+from __future__ import annotations
+
+
+class Busy(Exception):
+    """The scope or the time-lapse cannot do this now; the message says why and what to do."""
+
+
+class NotFound(LookupError):
+    pass
+
+
+class BadRequest(ValueError):
+    """A request with a value that no scope accepts, or that this scope's profile rules out.
+
+    ``field`` names the request field at fault (None: the request as a whole) and
+    ``problem`` says what is wrong and what is allowed. ``str()`` is ``"field: problem"``,
+    the web API's message; the command line names the field by its option instead
+    (``--range-um: problem``), so each front end speaks its own words around one text.
+    """
+
+    def __init__(self, problem: str, *, field: str | None = None) -> None:
+        self.problem = problem
+        self.field = field
+        super().__init__(f"{field}: {problem}" if field else problem)
