@@ -16,6 +16,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import logging
+import os
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -138,3 +139,18 @@ def make_series(folder: Path, camera: Camera) -> Series:
     return Series(
         camera, folder, Path(gen.descriptor_path), parsed.images, reference_results(data), data, float(gen.cam.K),
     )
+
+
+def write_manifest(series: Series, path: Path) -> Path:
+    """A phasewatch manifest listing the very files of ``series``, grouped as emva1288's
+    descriptor groups them (exposures in ns there, ms here; paths relative to ``path``)."""
+    lines = ["exposure_ms,kind,path"]
+    for group, (lit_kind, dark_kind) in (("temporal", ("lit", "dark")), ("spatial", ("spatial_lit", "spatial_dark"))):
+        for exposure_ns, by_photons in sorted(series.images[group].items()):
+            for photons, files in sorted(by_photons.items()):
+                kind = dark_kind if photons == 0.0 else lit_kind
+                for f in files:
+                    rel = os.path.relpath(Path(f).resolve(), path.parent.resolve())
+                    lines.append(f"{exposure_ns / 1e6!r},{kind},{Path(rel).as_posix()}")
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path

@@ -17,13 +17,18 @@ Two differences of definition, both explained where they are checked:
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import math
+import re
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 import pytest
 import tifffile
 
+from daemon.cli import main
 from daemon.illumination.characterize import (
     PRNU_TOTAL,
     Characterization,
@@ -33,7 +38,15 @@ from daemon.illumination.characterize import (
     pair_mean_variance,
 )
 from daemon.illumination.stats import RunningStats
-from tests.emva1288_reference import FULL_WELL_E, STACK_FRAMES, Camera, Series, make_series, reference_results
+from tests.emva1288_reference import (
+    FULL_WELL_E,
+    STACK_FRAMES,
+    Camera,
+    Series,
+    make_series,
+    reference_results,
+    write_manifest,
+)
 
 CAMERAS = {
     # The converter clips before the full well (0.5 DN/e⁻ × 15000 e⁻ > 4095 DN).
@@ -45,9 +58,22 @@ CAMERAS = {
 FULL_WELL_FIRST = Camera(bit_depth=12, gain_dn_per_e=0.25, black_offset_dn=30, steps=100)
 
 
-@pytest.fixture(scope="module", params=sorted(CAMERAS))
-def series(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> Series:
-    return make_series(tmp_path_factory.mktemp(f"emva1288-{request.param}"), CAMERAS[request.param])
+@pytest.fixture(scope="module")
+def made(tmp_path_factory: pytest.TempPathFactory) -> Callable[[str], Series]:
+    """Each camera's series, made once for the module."""
+    cache: dict[str, Series] = {}
+
+    def get(name: str) -> Series:
+        if name not in cache:
+            cache[name] = make_series(tmp_path_factory.mktemp(f"emva1288-{name}"), CAMERAS[name])
+        return cache[name]
+
+    return get
+
+
+@pytest.fixture(params=sorted(CAMERAS))
+def series(request: pytest.FixtureRequest, made: Callable[[str], Series]) -> Series:
+    return made(request.param)
 
 
 def analyse_reference_files(series: Series) -> Characterization:
@@ -132,3 +158,87 @@ def test_saturation_at_the_variance_maximum_when_the_full_well_clips_first(tmp_p
     assert series.reference["index_u_ysat"] >= peak
     at_peak = reference_results(series.data, index_u_ysat=peak)
     assert_within_1_percent(result, at_peak)
+
+
+# -- phasewatch characterize --frames MANIFEST.csv on the reference's frames -----------------
+
+
+def run_cli(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str, str]:
+    rc = main(["characterize", *args])
+    out, err = capsys.readouterr()
+    return rc, out, err
+
+
+def cli_report(capsys: pytest.CaptureFixture[str], manifest: Path, out: Path, *extra: str) -> dict:
+    rc, stdout, err = run_cli(capsys, "--frames", str(manifest), "--out", str(out), "--json", *extra)
+    assert rc == 0, err
+    assert "characterize: 100 %" in err  # progress on stderr, the report alone on stdout
+    return json.loads(stdout)
+
+
+def result_of(report: dict) -> Characterization:
+    return Characterization(**{k: v for k, v in report["results"].items() if k not in ("dynamic_range_db", "snr_max_db")})
+
+
+def test_characterize_frames_agrees_with_the_reference(series: Series, tmp_path: Path, capsys) -> None:
+    manifest = write_manifest(series, series.folder / "manifest.csv")
+    report = cli_report(capsys, manifest, tmp_path / "out")
+    result = result_of(report)
+    assert_within_1_percent(result, series.reference)
+    assert_threshold_is_the_exact_form_of_the_reference(result, series.reference)
+    assert result.saturation_index == series.reference["index_u_ysat"]
+    # 12-bit values in 16-bit files: the bit depth comes from the largest value.
+    assert report["bit_depth"] == series.camera.bit_depth and report["high_bits_shift"] == 0
+    assert report["frames"] == 4 * series.camera.steps + 2 * STACK_FRAMES
+    assert report["measuring_area_px"] > 0.99 * 192 * 256  # an even field: nearly all of it
+    saved = json.loads((tmp_path / "out" / "characterization.json").read_text())
+    assert saved["results"] == report["results"] and len(saved["points"]) == series.camera.steps
+    png = (tmp_path / "out" / "photon-transfer.png").read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 20000
+
+
+def test_frames_stored_otherwise_give_the_same_results(made: Callable[[str], Series], tmp_path: Path, capsys) -> None:
+    """The 12-bit series as 16-bit PNGs with the values in the high bits (×16, as some
+    cameras store 12-bit data), and the two stacks as multi-page TIFFs."""
+    import imageio.v3 as iio
+
+    series = made("12-bit")
+    plain = analyse_reference_files(series)
+    lines = ["exposure_ms,kind,path"]
+    for exposure_ns, by_photons in sorted(series.images["temporal"].items()):
+        for photons, files in by_photons.items():
+            for f in files:
+                name = f"{Path(f).stem}.png"
+                iio.imwrite(tmp_path / name, tifffile.imread(f) << 4, compress_level=0)
+                lines.append(f"{exposure_ns / 1e6!r},{'dark' if photons == 0.0 else 'lit'},{name}")
+    ((exposure_ns, by_photons),) = series.images["spatial"].items()
+    for photons, files in by_photons.items():
+        kind = "spatial_dark" if photons == 0.0 else "spatial_lit"
+        tifffile.imwrite(tmp_path / f"{kind}.tif", np.stack([tifffile.imread(f) << 4 for f in files]))
+        lines.append(f"{exposure_ns / 1e6!r},{kind},{kind}.tif")
+    manifest = tmp_path / "shifted.csv"
+    manifest.write_text("\n".join(lines) + "\n")
+    rc, text, err = run_cli(capsys, "--frames", str(manifest), "--out", str(tmp_path / "shifted"))
+    assert rc == 0, err
+    report = json.loads((tmp_path / "shifted" / "characterization.json").read_text())
+    assert report["bit_depth"] == 12 and report["high_bits_shift"] == 4
+    assert report["spatial_stacks"]["frames"] == STACK_FRAMES
+    assert report["measuring_area_px"] == 192 * 256  # as in the analysis without a manifest
+    for key, value in dataclasses.asdict(plain).items():
+        assert getattr(result_of(report), key) == (pytest.approx(value, rel=1e-9) if isinstance(value, float) else value)
+    # The text report: the quantities, the PRNU method, what was done to the values.
+    assert re.search(rf"system gain K +{plain.system_gain_dn_per_e:.4g} DN/e-", text)
+    assert "PRNU: EMVA 1288 total (uniform field)" in text and "photon-transfer.png" in text
+    assert "stored in the high bits (all multiples of 16): divided by 16" in text
+
+
+def test_bit_depth_given_on_the_command_line(made: Callable[[str], Series], tmp_path: Path, capsys) -> None:
+    series = made("12-bit")
+    manifest = write_manifest(series, series.folder / "manifest-bits.csv")
+    given = cli_report(capsys, manifest, tmp_path / "given", "--bit-depth", "14")
+    assert given["bit_depth"] == 14 and given["bit_depth_from"] == "--bit-depth"
+    # The full scale only marks the plot and counts clipped pixels: the results stand.
+    assert_within_1_percent(result_of(given), series.reference)
+    # The series reaches 4095: more than 10 bits hold.
+    rc, _, err = run_cli(capsys, "--frames", str(manifest), "--out", str(tmp_path / "ten"), "--bit-depth", "10")
+    assert rc == 2 and "values reach 4095, more than 10 bits hold (full scale 1023); check --bit-depth" in err

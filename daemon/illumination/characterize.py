@@ -95,11 +95,18 @@ class SpatialStacks:
 
     exposure_ms: float
     frames: int
+    """L of the lit stack"""
     bright_mean: np.ndarray
     bright_var: np.ndarray
     """per-pixel temporal variance over the L lit frames (DN²)"""
     dark_mean: np.ndarray
     dark_var: np.ndarray
+    dark_frames: int | None = None
+    """L of the dark stack where it differs from the lit one's"""
+
+    @property
+    def dark_count(self) -> int:
+        return self.dark_frames if self.dark_frames is not None else self.frames
 
     @property
     def dark_temporal_var_dn2(self) -> float:
@@ -174,6 +181,50 @@ def pair_mean_variance(a: np.ndarray, b: np.ndarray, mask: np.ndarray | None = N
     return (mu_a + mu_b) / 2.0, var
 
 
+class SeriesStats:
+    """Mean μ_y and temporal variance σ²_y of L ≥ 2 frames taken under the same conditions,
+    fed one frame at a time (the frames need not all be in memory).
+
+    For L = 2 this is :func:`pair_mean_variance` (the same sums, rounding aside); for more
+    frames it is its generalisation: the per-pixel sample variance over the L frames, averaged over the
+    pixels, less the sample variance of the L frame means (which removes a drift of the
+    lamp or the black level from frame to frame, as the pair formula's second term does).
+    """
+
+    def __init__(self, mask: np.ndarray | None = None, *, full_scale_dn: float | None = None) -> None:
+        self.mask = mask
+        self.full_scale_dn = full_scale_dn
+        self._pixels: RunningStats | None = None
+        self._frame_means: list[float] = []
+        self._saturated = 0
+
+    def add(self, frame: np.ndarray) -> None:
+        px = np.asarray(frame, dtype=np.float64)
+        if self.mask is not None:
+            px = px[self.mask]
+        if self.full_scale_dn is not None:
+            self._saturated += int(np.count_nonzero(px >= self.full_scale_dn))
+        if self._pixels is None:
+            self._pixels = RunningStats(px.shape)
+        self._pixels.add(px)
+        self._frame_means.append(float(px.mean()))
+
+    @property
+    def frames(self) -> int:
+        return len(self._frame_means)
+
+    @property
+    def saturated_fraction(self) -> float:
+        """Share of the pixel values at or above full scale (0 without ``full_scale_dn``)."""
+        return self._saturated / max(1, self.frames * (self._pixels.mean.size if self._pixels is not None else 1))
+
+    def mean_variance(self) -> tuple[float, float]:
+        if self.frames < 2 or self._pixels is None:
+            raise CalibrationError(f"the temporal variance needs two or more frames, got {self.frames}")
+        drift = float(np.var(self._frame_means, ddof=1))
+        return float(np.mean(self._frame_means)), float(np.mean(self._pixels.variance)) - drift
+
+
 def _smooth_signal(lit: np.ndarray, dark: np.ndarray) -> np.ndarray:
     """Lit minus dark, box-filtered over 1/16 of the frame: the shading of the field,
     with the pixel-to-pixel pattern and the temporal noise averaged away."""
@@ -226,7 +277,7 @@ def _spatial_var_dn2(mean_image: np.ndarray, temporal_var_dn2: float, frames: in
 def dsnu_e(stacks: SpatialStacks, gain: float) -> float:
     """DSNU_1288 = s_y.dark / K (e⁻), with s²_y.dark the spatial variance of the averaged
     dark stack (EMVA 1288 Release 4.0 Linear; see :func:`_spatial_var_dn2`)."""
-    s2 = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.frames)
+    s2 = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.dark_count)
     return math.sqrt(max(s2, 0.0)) / gain
 
 
@@ -246,7 +297,7 @@ def prnu_1288(stacks: SpatialStacks) -> float:
     variances as in :func:`_spatial_var_dn2`. This includes every part of the pattern:
     pixel, row and column non-uniformity."""
     s2_lit = _spatial_var_dn2(stacks.bright_mean, stacks.bright_temporal_var_dn2, stacks.frames)
-    s2_dark = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.frames)
+    s2_dark = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.dark_count)
     signal = float(np.mean(stacks.bright_mean)) - float(np.mean(stacks.dark_mean))
     if signal <= 0:
         raise CalibrationError("the lit stack is no brighter than the dark one: is the lamp on?")
@@ -273,7 +324,7 @@ def prnu_highpass(stacks: SpatialStacks, mask: np.ndarray, box_px: int = HIGHPAS
     inner &= smooth > 0
     rel = signal[inner] / smooth[inner] - 1.0
     measured = float(np.var(rel)) / (1.0 - 1.0 / box_px**2)
-    noise = float(np.mean((stacks.bright_var[inner] + stacks.dark_var[inner]) / stacks.frames / smooth[inner] ** 2))
+    noise = float(np.mean((stacks.bright_var[inner] / stacks.frames + stacks.dark_var[inner] / stacks.dark_count) / smooth[inner] ** 2))
     return math.sqrt(max(measured - noise, 0.0))
 
 
@@ -369,7 +420,8 @@ class Measurement:
     dark_series: list[DarkPoint]
     stacks: SpatialStacks
     mask: np.ndarray
-    gain_db: float
+    gain_db: float | None
+    """None for frames acquired elsewhere (a manifest), where the gain is not known"""
     bit_depth: int
     frame_shape: tuple[int, int]
 
@@ -629,7 +681,8 @@ def plot_photon_transfer(
         f"{len(pts)} exposure steps, lit and dark pairs",
         f"measured on {int(measurement.mask.sum())} evenly lit pixels",
         f"PRNU: {result.prnu_method}; field spread {100 * result.field_nonuniformity:.1f} %",
-        f"{measurement.bit_depth}-bit, gain {measurement.gain_db:g} dB",
+        f"{measurement.bit_depth}-bit"
+        + (f", gain {measurement.gain_db:g} dB" if measurement.gain_db is not None else ", frames acquired elsewhere"),
     ]
     if not result.dark_resolved:
         notes += [
