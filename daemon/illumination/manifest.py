@@ -20,8 +20,8 @@ frames, and dark frames at exposures without lit ones extend the dark-current fi
 one exposure, two or more frames each (EMVA 1288 suggests a lit level near half of
 saturation). Lines starting with ``#`` are comments.
 
-Frames are monochrome integer images: TIFF (read with tifffile) or anything imageio
-reads (PNG). The bit depth is the one given, or else the smallest of 8, 10, 12, 14 and
+Frames are monochrome integer images: TIFF (read with tifffile), or PNG and the other
+formats that imageio reads through Pillow. The bit depth is the one given, or else the smallest of 8, 10, 12, 14 and
 16 bits that holds the largest value in the series; values that are all multiples of
 2^s (data stored in the high bits of 16-bit files, as some cameras do) are divided by
 2^s first.
@@ -171,9 +171,10 @@ def _probe(row: Row) -> FileInfo:
         import imageio.v3 as iio
 
         # An open file of our own: imageio leaves a path it opened itself open when no
-        # reader takes the file.
+        # reader takes the file. Pillow's reader only: the others are for formats no
+        # camera frame comes in (and some warn of their own deprecation on the way).
         with row.path.open("rb") as fh:
-            props = iio.improps(fh, extension=row.path.suffix)
+            props = iio.improps(fh, extension=row.path.suffix, plugin="pillow")
     except ManifestError:
         raise
     except Exception as exc:  # any reader's way of saying the file is not an image it reads
@@ -193,7 +194,7 @@ def _frames(row: Row, info: FileInfo) -> Iterator[np.ndarray]:
             import imageio.v3 as iio
 
             with row.path.open("rb") as fh:
-                pixels = iio.imread(fh, extension=row.path.suffix)
+                pixels = iio.imread(fh, extension=row.path.suffix, plugin="pillow")
     except Exception as exc:  # a header that reads and pixels that do not
         raise row.error(f"cannot read the image ({_first_line(exc)})") from None
     pixels = np.asarray(pixels).reshape((info.frames, *info.shape))
