@@ -19,6 +19,7 @@ import pytest
 from daemon.commands.characterize import characterize
 from daemon.illumination import CalibrationError
 from daemon.illumination.characterize import (
+    PRNU_HIGHPASS,
     QUANTISATION_VAR_DN2,
     analyse,
     measure,
@@ -56,6 +57,8 @@ async def test_recovers_the_constants_of_a_synthetic_sensor(gain: float, offset_
     assert r.dark_current_e_per_s == pytest.approx(sensor.dark_current_e_per_s, rel=0.10)
     assert r.dsnu_e == pytest.approx(sensor.dsnu_e, rel=0.10)
     assert r.prnu_fraction == pytest.approx(sensor.prnu_fraction, rel=0.15)
+    # The synthetic field is shaded like a microscope's: PRNU after the high-pass.
+    assert r.prnu_method == PRNU_HIGHPASS and r.field_nonuniformity > 0.2
     # Saturation by the converter: (full scale − black level) / K electrons; EMVA's variance
     # peak lies somewhat below it, within one exposure step (5 % of the full-scale exposure).
     adc_e = (255 - sensor.offset_dn) / gain

@@ -11,8 +11,11 @@ stacks give the spatial non-uniformities DSNU and PRNU.
 No calibrated light source is needed for these (unlike quantum efficiency, which needs
 the photon count and is not reported). What the standard asks that a scope cannot give
 exactly is a uniform field: the statistics of the photon transfer are taken over the
-most evenly lit part of the frame (within ``ROI_UNIFORMITY`` of its brightest level),
-and PRNU is computed after removing the smooth shading (see :func:`prnu_highpass`).
+most evenly lit part of the frame (within ``ROI_UNIFORMITY`` of its brightest level).
+PRNU follows the standard's definition (:func:`prnu_1288`) when the field is uniform
+(frames from a proper test rig); on a shaded field, as under a microscope, it is
+computed after removing the smooth shading (:func:`prnu_highpass`), which would also
+remove any smooth or row/column part of the sensor's own non-uniformity.
 
 This module is split so that the analysis can be checked against frames of known
 constants: :func:`pair_mean_variance` and :func:`analyse` are pure numpy, :func:`measure`
@@ -57,6 +60,13 @@ PRNU_AREA_UNIFORMITY = 0.5
 DARK_SERIES_STEPS = 4
 #: Box size (px) of the high-pass used for PRNU on an unevenly lit field.
 HIGHPASS_BOX_PX = 7
+#: A field whose smoothed lit signal stays within ± this fraction of its mean counts as
+#: uniform, and PRNU then follows the standard's definition without a high-pass
+#: (EMVA 1288 asks for an irradiation uniform to ±3 %, from memory).
+UNIFORM_FIELD_TOLERANCE = 0.03
+#: How PRNU was computed (Characterization.prnu_method).
+PRNU_TOTAL = "EMVA 1288 total (uniform field)"
+PRNU_HIGHPASS = f"high-pass {HIGHPASS_BOX_PX}x{HIGHPASS_BOX_PX} px (shaded field)"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -86,11 +96,18 @@ class SpatialStacks:
 
     exposure_ms: float
     frames: int
+    """L of the lit stack"""
     bright_mean: np.ndarray
     bright_var: np.ndarray
     """per-pixel temporal variance over the L lit frames (DN²)"""
     dark_mean: np.ndarray
     dark_var: np.ndarray
+    dark_frames: int | None = None
+    """L of the dark stack where it differs from the lit one's"""
+
+    @property
+    def dark_count(self) -> int:
+        return self.dark_frames if self.dark_frames is not None else self.frames
 
     @property
     def dark_temporal_var_dn2(self) -> float:
@@ -126,6 +143,11 @@ class Characterization:
     dark_resolved: bool
     """False when the temporal dark noise is below the quantisation step: read noise is
     then an upper bound and DSNU and dark current are not resolved either."""
+    field_nonuniformity: float
+    """Peak-to-peak spread of the smoothed lit stack over the frame, as a fraction of its
+    mean (see :func:`field_nonuniformity`)."""
+    prnu_method: str
+    """:data:`PRNU_TOTAL` on a uniform field, :data:`PRNU_HIGHPASS` on a shaded one."""
 
     @property
     def dynamic_range_db(self) -> float:
@@ -160,16 +182,66 @@ def pair_mean_variance(a: np.ndarray, b: np.ndarray, mask: np.ndarray | None = N
     return (mu_a + mu_b) / 2.0, var
 
 
+class SeriesStats:
+    """Mean μ_y and temporal variance σ²_y of L ≥ 2 frames taken under the same conditions,
+    fed one frame at a time (the frames need not all be in memory).
+
+    For L = 2 this is :func:`pair_mean_variance` (the same sums, rounding aside); for more
+    frames it is its generalisation: the per-pixel sample variance over the L frames, averaged over the
+    pixels, less the sample variance of the L frame means (which removes a drift of the
+    lamp or the black level from frame to frame, as the pair formula's second term does).
+    """
+
+    def __init__(self, mask: np.ndarray | None = None, *, full_scale_dn: float | None = None) -> None:
+        self.mask = mask
+        self.full_scale_dn = full_scale_dn
+        self._pixels: RunningStats | None = None
+        self._frame_means: list[float] = []
+        self._saturated = 0
+
+    def add(self, frame: np.ndarray) -> None:
+        px = np.asarray(frame, dtype=np.float64)
+        if self.mask is not None:
+            px = px[self.mask]
+        if self.full_scale_dn is not None:
+            self._saturated += int(np.count_nonzero(px >= self.full_scale_dn))
+        if self._pixels is None:
+            self._pixels = RunningStats(px.shape)
+        self._pixels.add(px)
+        self._frame_means.append(float(px.mean()))
+
+    @property
+    def frames(self) -> int:
+        return len(self._frame_means)
+
+    @property
+    def saturated_fraction(self) -> float:
+        """Share of the pixel values at or above full scale (0 without ``full_scale_dn``)."""
+        return self._saturated / max(1, self.frames * (self._pixels.mean.size if self._pixels is not None else 1))
+
+    def mean_variance(self) -> tuple[float, float]:
+        if self.frames < 2 or self._pixels is None:
+            raise CalibrationError(f"the temporal variance needs two or more frames, got {self.frames}")
+        drift = float(np.var(self._frame_means, ddof=1))
+        return float(np.mean(self._frame_means)), float(np.mean(self._pixels.variance)) - drift
+
+
+def _smooth_signal(lit: np.ndarray, dark: np.ndarray) -> np.ndarray:
+    """Lit minus dark, box-filtered over 1/16 of the frame: the shading of the field,
+    with the pixel-to-pixel pattern and the temporal noise averaged away."""
+    signal = np.asarray(lit, dtype=np.float32) - np.asarray(dark, dtype=np.float32)
+    size = max(5, min(signal.shape) // 16) | 1
+    return ndimage.uniform_filter(signal, size=size, mode="nearest")
+
+
 def uniform_area(lit: np.ndarray, dark: np.ndarray, *, uniformity: float = ROI_UNIFORMITY, min_px: int = 2000) -> np.ndarray:
     """Boolean mask of the most evenly lit part of the field: pixels whose smoothed signal
     is within ``uniformity`` of the brightest (widened until it holds ``min_px`` pixels)."""
-    signal = np.asarray(lit, dtype=np.float32) - np.asarray(dark, dtype=np.float32)
-    size = max(5, min(signal.shape) // 16) | 1
-    smooth = ndimage.uniform_filter(signal, size=size, mode="nearest")
+    smooth = _smooth_signal(lit, dark)
     top = float(np.percentile(smooth, 99.9))
     if top <= 0:
         raise CalibrationError("the lit frame is no brighter than the dark one: is the lamp on?")
-    min_px = min(min_px, signal.size // 4)
+    min_px = min(min_px, smooth.size // 4)
     tol = uniformity
     while True:
         mask = smooth >= (1.0 - tol) * top
@@ -196,22 +268,54 @@ def saturation_index(points: list[PtcPoint]) -> int:
     return int(np.argmax([p.var_dn2 for p in points]))
 
 
+def _spatial_var_dn2(mean_image: np.ndarray, temporal_var_dn2: float, frames: int) -> float:
+    """s²_y of an average of L frames (EMVA 1288 Release 4.0 Linear): the spatial variance
+    of the averaged image over all M·N pixels (divisor MN − 1) less the temporal variance
+    that the average still holds, σ²_y.stack / L."""
+    return float(np.var(mean_image.astype(np.float64), ddof=1)) - temporal_var_dn2 / frames
+
+
 def dsnu_e(stacks: SpatialStacks, gain: float) -> float:
-    """DSNU_1288 = s_y.dark / K (e⁻), s²_y.dark = spatial variance of the averaged dark minus
-    the temporal variance left in an average of L frames, σ²_y.dark / L (EMVA 1288)."""
-    s2 = float(np.var(stacks.dark_mean.astype(np.float64))) - stacks.dark_temporal_var_dn2 / stacks.frames
+    """DSNU_1288 = s_y.dark / K (e⁻), with s²_y.dark the spatial variance of the averaged
+    dark stack (EMVA 1288 Release 4.0 Linear; see :func:`_spatial_var_dn2`)."""
+    s2 = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.dark_count)
     return math.sqrt(max(s2, 0.0)) / gain
+
+
+def field_nonuniformity(stacks: SpatialStacks) -> float:
+    """(max − min) / mean of the lit stack's smoothed signal over the frame: 0 for a
+    perfectly even field; a microscope's vignetting gives tens of percent."""
+    smooth = _smooth_signal(stacks.bright_mean, stacks.dark_mean).astype(np.float64)
+    mean = float(smooth.mean())
+    if mean <= 0:
+        raise CalibrationError("the lit stack is no brighter than the dark one: is the lamp on?")
+    return float(smooth.max() - smooth.min()) / mean
+
+
+def prnu_1288(stacks: SpatialStacks) -> float:
+    """PRNU_1288 = √(s²_y.50 − s²_y.dark) / (μ_y.50 − μ_y.dark) (fraction), EMVA 1288
+    Release 4.0 Linear, over the whole frame of a uniformly lit sensor; both spatial
+    variances as in :func:`_spatial_var_dn2`. This includes every part of the pattern:
+    pixel, row and column non-uniformity."""
+    s2_lit = _spatial_var_dn2(stacks.bright_mean, stacks.bright_temporal_var_dn2, stacks.frames)
+    s2_dark = _spatial_var_dn2(stacks.dark_mean, stacks.dark_temporal_var_dn2, stacks.dark_count)
+    signal = float(np.mean(stacks.bright_mean)) - float(np.mean(stacks.dark_mean))
+    if signal <= 0:
+        raise CalibrationError("the lit stack is no brighter than the dark one: is the lamp on?")
+    return math.sqrt(max(s2_lit - s2_dark, 0.0)) / signal
 
 
 def prnu_highpass(stacks: SpatialStacks, mask: np.ndarray, box_px: int = HIGHPASS_BOX_PX) -> float:
     """PRNU_1288 (fraction) on an unevenly lit field.
 
-    EMVA 1288 defines PRNU = √(s²_y.50 − s²_y.dark) / (μ_y.50 − μ_y.dark) on a uniform field.
-    Here the dark average is subtracted pixel by pixel (which removes the DSNU term), the
+    EMVA 1288 defines PRNU = √(s²_y.50 − s²_y.dark) / (μ_y.50 − μ_y.dark) on a uniform field
+    (:func:`prnu_1288`). Here the dark average is subtracted pixel by pixel (which removes the DSNU term), the
     result is divided by its own ``box_px`` running mean (removing the smooth shading and
     giving relative values), and the variance of that is corrected for the high-pass
     (a white pattern keeps 1 − 1/box² of its variance) and for the temporal noise left
-    in the two averages of L frames.
+    in the two averages of L frames. A smooth, row or column part of the sensor's own
+    pattern is removed with the shading, so this reads lower than :func:`prnu_1288` for
+    such a sensor.
     """
     signal = stacks.bright_mean.astype(np.float64) - stacks.dark_mean
     smooth = ndimage.uniform_filter(signal, size=box_px, mode="nearest")
@@ -221,7 +325,7 @@ def prnu_highpass(stacks: SpatialStacks, mask: np.ndarray, box_px: int = HIGHPAS
     inner &= smooth > 0
     rel = signal[inner] / smooth[inner] - 1.0
     measured = float(np.var(rel)) / (1.0 - 1.0 / box_px**2)
-    noise = float(np.mean((stacks.bright_var[inner] + stacks.dark_var[inner]) / stacks.frames / smooth[inner] ** 2))
+    noise = float(np.mean((stacks.bright_var[inner] / stacks.frames + stacks.dark_var[inner] / stacks.dark_count) / smooth[inner] ** 2))
     return math.sqrt(max(measured - noise, 0.0))
 
 
@@ -274,6 +378,12 @@ def analyse(points: list[PtcPoint], stacks: SpatialStacks, dark_series: list[Dar
     dark_var_used = max(dark_var0, MIN_RESOLVED_DARK_VAR_DN2)
     read_noise = math.sqrt(dark_var_used - QUANTISATION_VAR_DN2) / gain
     sat_capacity = sat_signal / gain
+    nonuniformity = field_nonuniformity(stacks)
+    if nonuniformity <= 2.0 * UNIFORM_FIELD_TOLERANCE:
+        prnu, prnu_method = prnu_1288(stacks), PRNU_TOTAL
+    else:
+        area = uniform_area(stacks.bright_mean, stacks.dark_mean, uniformity=PRNU_AREA_UNIFORMITY)
+        prnu, prnu_method = prnu_highpass(stacks, area), PRNU_HIGHPASS
     # Signal at SNR = 1 from the model's SNR = μ_e / √(σ²_y.dark/K² + μ_e):
     # μ_e² − μ_e − σ²_y.dark/K² = 0.
     threshold = 0.5 + math.sqrt(0.25 + dark_var_used / gain**2)
@@ -285,7 +395,7 @@ def analyse(points: list[PtcPoint], stacks: SpatialStacks, dark_series: list[Dar
         dark_current_e_per_s=dark_slope / gain,
         dark_noise_dn=math.sqrt(dark_var_used),
         dsnu_e=dsnu_e(stacks, gain),
-        prnu_fraction=prnu_highpass(stacks, uniform_area(stacks.bright_mean, stacks.dark_mean, uniformity=PRNU_AREA_UNIFORMITY)),
+        prnu_fraction=prnu,
         saturation_dn=float(pts[i_sat].mean_dn),
         saturation_capacity_e=sat_capacity,
         sensitivity_threshold_e=threshold,
@@ -297,6 +407,8 @@ def analyse(points: list[PtcPoint], stacks: SpatialStacks, dark_series: list[Dar
         gain_fit_rel_residual=rel_resid,
         gain_fit_offset_dn2=offset,
         dark_resolved=resolved,
+        field_nonuniformity=nonuniformity,
+        prnu_method=prnu_method,
     )
 
 
@@ -309,7 +421,8 @@ class Measurement:
     dark_series: list[DarkPoint]
     stacks: SpatialStacks
     mask: np.ndarray
-    gain_db: float
+    gain_db: float | None
+    """None for frames acquired elsewhere (a manifest), where the gain is not known"""
     bit_depth: int
     frame_shape: tuple[int, int]
 
@@ -568,7 +681,9 @@ def plot_photon_transfer(
         "saturation: the variance peak (EMVA 1288)",
         f"{len(pts)} exposure steps, lit and dark pairs",
         f"measured on {int(measurement.mask.sum())} evenly lit pixels",
-        f"{measurement.bit_depth}-bit, gain {measurement.gain_db:g} dB",
+        f"PRNU: {result.prnu_method}; field spread {100 * result.field_nonuniformity:.1f} %",
+        f"{measurement.bit_depth}-bit"
+        + (f", gain {measurement.gain_db:g} dB" if measurement.gain_db is not None else ", frames acquired elsewhere"),
     ]
     if not result.dark_resolved:
         notes += [
