@@ -75,12 +75,14 @@ class NoiseModel:
     """Standard deviation of one well's measured confluence (a fraction, 0..1) at one time
     point: ``sqrt(absolute² + (relative · c)²)``.
 
-    The defaults describe the mean of a few 10x fields of a few hundred cells each, as
-    the time-lapses take them: the relative part is the scatter from cells entering and
-    leaving the fields and dividing one at a time (about 1/sqrt of the number of new
-    cells over a few hours, a few per cent); the absolute part is what an empty field
-    reads (specks, debris, well under 1 %). They are the least error the fit states; when
-    the points scatter more, the stated error grows with them (see the module docstring).
+    The defaults describe the mean of a few 10x fields of about a hundred cells each, as
+    the time-lapses take them. Relative, 4 %: the scatter of such fields from time point to
+    time point as cells enter and leave them and divide one at a time - counting
+    statistics, about 1/sqrt of the ten-odd cells that are new over a few hours (an
+    estimate, not a measurement; a lab with larger fields or more sites scatters less).
+    Absolute, 0.5 pp: what an empty field reads (specks, debris; the segmentation keeps it
+    below 1 %). They are the least error the fit states; when the points scatter more, the
+    stated error grows with them (see the module docstring).
     """
 
     absolute: float = 0.005
