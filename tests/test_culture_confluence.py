@@ -634,11 +634,12 @@ def test_confluence_of_the_real_cell_against_its_phase_map(real_cell_errors: lis
         print(f"\n{method}: area found / phase-map area: {ratios}")
     for row in real_cell_errors:
         ratio = float(row["area_ratio"])  # type: ignore[arg-type]
-        # Both find the cell's area to within a quarter, except that the halo-rejection
-        # method takes in parts of the strong halo of a thick cell at 20x (a known
-        # weakness, measured: up to 1.9 times the area; 3 pp of this frame).
+        # Both find the cell's area to within 30 % (measured: halo-rejection 0.95-1.13,
+        # jaccard-2014 1.01-1.20), except that the halo-rejection method takes in parts of
+        # the strong halo of a thick cell at 20x (a known weakness, measured: up to 1.9
+        # times the area, 3 pp of this frame).
         strong_halo = row["objective"] == "20x/0.40" and row["peak_rad"] == 1.6
-        high = 2.0 if row["method"] == HALO_REJECTION and strong_halo else 1.25
+        high = 2.5 if row["method"] == HALO_REJECTION and strong_halo else 1.3
         assert 0.75 <= ratio <= high, row
         assert abs(float(row["error_pp"])) <= MAX_TARGET_PP  # type: ignore[arg-type]
 
