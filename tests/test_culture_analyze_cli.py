@@ -64,11 +64,31 @@ def test_folder_as_json_with_overlays(sim_frames: dict[str, object], tmp_path: P
     assert len(json.loads(capsys.readouterr().out)) == 3
 
 
+def test_json_names_the_method_and_another_can_be_chosen(sim_frames: dict[str, object], capsys: pytest.CaptureFixture[str]) -> None:
+    from daemon.culture.confluence import DEFAULT_METHOD, JACCARD_2014, METHOD_DESCRIPTIONS
+
+    folder: Path = sim_frames["folder"]  # type: ignore[assignment]
+    frame = str(folder / "c4-day5.tif")
+    assert main(["analyze", frame, "--json"]) == 0
+    (row,) = json.loads(capsys.readouterr().out)
+    assert row["method"] == DEFAULT_METHOD and row["method_description"] == METHOD_DESCRIPTIONS[DEFAULT_METHOD]
+    assert main(["analyze", frame, "--json", "--method", JACCARD_2014]) == 0
+    (other,) = json.loads(capsys.readouterr().out)
+    assert other["method"] == JACCARD_2014 and "as published" in other["method_description"]
+    # Both read the same frame close to the simulator's truth.
+    assert abs(other["confluence"] - row["simulator_confluence"]) <= 0.10
+    with pytest.raises(SystemExit):
+        main(["analyze", frame, "--method", "otsu"])
+    assert "invalid choice" in capsys.readouterr().err
+
+
 def test_single_file_as_text(sim_frames: dict[str, object], capsys: pytest.CaptureFixture[str]) -> None:
     folder: Path = sim_frames["folder"]  # type: ignore[assignment]
     assert main(["analyze", str(folder / "c4-day2.tif")]) == 0
     text = capsys.readouterr().out
-    assert "confluence" in text and "(simulator:" in text
+    from daemon.culture.confluence import DEFAULT_METHOD
+
+    assert "confluence" in text and "(simulator:" in text and f"({DEFAULT_METHOD})" in text
     assert "cells" in text
 
 

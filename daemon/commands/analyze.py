@@ -1,7 +1,8 @@
 """``phasewatch analyze FILE_OR_DIR``: confluence and cell count of saved frames.
 
 Pixel size comes from ``--pixel-size-um``, else from the frame's OME metadata, else from
-the profile's optics. With ``--overlay DIR`` each frame's cell mask is drawn over it as a
+the profile's optics. ``--method`` picks the confluence segmentation (see
+daemon/culture/confluence.py); every result names the method it came from. With ``--overlay DIR`` each frame's cell mask is drawn over it as a
 PNG, to check the segmentation by eye. On a simulated profile, frames that carry their
 stage position and time also show the simulator's true coverage beside the estimate.
 """
@@ -22,7 +23,7 @@ import numpy as np
 import tifffile
 
 from daemon.commands.common import print_json
-from daemon.culture.confluence import confluence, overlay
+from daemon.culture.confluence import DEFAULT_METHOD, METHODS, confluence, overlay
 from daemon.culture.counting import count_cells
 from daemon.profile import Profile, load_profile
 from drivers import atomic
@@ -39,6 +40,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--json", action="store_true", help="print the results as JSON")
     p.add_argument("--overlay", type=Path, default=None, metavar="DIR", help="write mask overlays as PNG into DIR")
     p.add_argument("--pixel-size-um", type=float, default=None, help="pixel size in the sample plane (overrides metadata)")
+    p.add_argument(
+        "--method", choices=METHODS, default=DEFAULT_METHOD,
+        help=f"confluence segmentation (default: {DEFAULT_METHOD}; jaccard-2014 is the published method, best on dark-subtracted frames)",
+    )
     p.add_argument(
         "--profile", "-p", default="sim",
         help="scope profile for the pixel size when a frame does not carry one (default: sim)",
@@ -159,8 +164,8 @@ class FrameTruth:
 
 
 def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_dir: Path | None,
-                  root: Path, truth: FrameTruth | None = None) -> dict[str, object]:
-    result = confluence(info.pixels, pixel_size_um=pixel_size_um, return_mask=True)
+                  root: Path, truth: FrameTruth | None = None, method: str = DEFAULT_METHOD) -> dict[str, object]:
+    result = confluence(info.pixels, pixel_size_um=pixel_size_um, return_mask=True, method=method)
     count = count_cells(info.pixels, pixel_size_um=pixel_size_um, confluence=result.fraction, mask=result.mask)
     row: dict[str, object] = {
         "file": str(path),
@@ -169,6 +174,7 @@ def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_
         "pixel_size_um": pixel_size_um,
         "confluence": round(result.fraction, 4),
         "method": result.method,
+        "method_description": result.method_description,
         "cell_count": count.count,
         "count_reliable": count.reliable,
         "count_note": count.reason,
@@ -189,7 +195,7 @@ def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_
 
 
 def _describe(row: dict[str, object]) -> str:
-    text = f"{row['file']}: confluence {float(row['confluence']) * 100:.1f} %"  # type: ignore[arg-type]
+    text = f"{row['file']}: confluence {float(row['confluence']) * 100:.1f} % ({row['method']})"  # type: ignore[arg-type]
     if "simulator_confluence" in row:
         text += f"  (simulator: {float(row['simulator_confluence']) * 100:.1f} %)"  # type: ignore[arg-type]
     if row["count_reliable"]:
@@ -217,7 +223,7 @@ def analyze_all(args: argparse.Namespace) -> tuple[list[dict[str, object]], list
         px_um = args.pixel_size_um or (info.pixel_size_um if info.pixel_size_um and info.pixel_size_um > 0 else None)
         rows.append(analyze_frame(
             path, info, pixel_size_um=px_um or profile.optics.pixel_size_um,
-            overlay_dir=args.overlay, root=root, truth=truth,
+            overlay_dir=args.overlay, root=root, truth=truth, method=args.method,
         ))
     return rows, problems
 
