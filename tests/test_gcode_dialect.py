@@ -173,7 +173,7 @@ def test_the_boards_replies_read_back_as_their_kinds():
 
 @pytest.mark.parametrize(
     ("line", "word"),
-    [("G1 X1", "G1"), ("g01 x1", "G1"), ("M0114", "M114"), ("  M400", "M400"), ("N7 G1 X1", ""), ("", ""), ("T0", "")],
+    [("G1 X1", "G1"), ("g01 x1", "G1"), ("M0114", "M114"), ("  M400", "M400"), ("N7 G1 X1*12", "G1"), ("N7 X1", ""), ("", ""), ("T0", "")],
 )
 def test_command_word(line, word):
     assert REPRAP.command_word(line) == word

@@ -96,6 +96,7 @@ class LineProtocol:
         self._boot_wait_s = boot_wait_s
         self._backoff = backoff
         self._line_checksums = line_checksums
+        self._detected = False
         self.halted: str | None = None
         self.needs_resync = False
         self._absolute_sent = False
@@ -123,23 +124,22 @@ class LineProtocol:
         self._numbering = False
         self.halted = None
         self.boot_lines = []
+        self._detected = False
         self._forget("the stage has not been homed since the driver connected")
         try:
             await self._await_boot(self._boot_wait_s)
-            if self._auto:
+            if self._auto and not self._detected:
                 await self._detect()
-            await self._probe()
-            describe = self.dialect.describe_command
-            try:
-                info = await self.exchange(describe, timeout_s=self._reply_timeout_s, info=True, framed=False)
-                self.firmware = " / ".join(info)
-            except (Halted, PositionUnknownError):
-                raise
-            except MotionError:
-                if not self.link.up:
-                    raise
-                # Not every board describes itself; a refused describe is no reason to fail.
-                self.firmware = f"(the controller does not describe itself: no {describe})"
+            for _ in range(_PROBE_ATTEMPTS):
+                try:
+                    await self._probe()
+                    await self._describe()
+                    break
+                except PositionUnknownError:
+                    # It restarted in the middle of the handshake: let it boot, start over.
+                    await self._await_boot(self._reply_timeout_s, banner_seen=True)
+            else:
+                raise MotionError(f"the controller on {self.port} keeps restarting; check its power supply")
             if self.needs_resync:
                 await self._resync()
             if self.halted is None:
@@ -147,6 +147,19 @@ class LineProtocol:
         except BaseException:
             self.link.close()
             raise
+
+    async def _describe(self) -> None:
+        describe = self.dialect.describe_command
+        try:
+            info = await self.exchange(describe, timeout_s=self._reply_timeout_s, info=True, framed=False)
+            self.firmware = " / ".join(info)
+        except (Halted, PositionUnknownError):
+            raise
+        except MotionError:
+            if not self.link.up:
+                raise
+            # Not every board describes itself; a refused describe is no reason to fail.
+            self.firmware = f"(the controller does not describe itself: no {describe})"
 
     def close(self) -> None:
         self.link.close()
@@ -183,9 +196,10 @@ class LineProtocol:
         for _ in range(_PROBE_ATTEMPTS):
             await self.link.write(DETECT_COMMAND)
             found = await self._listen_for_dialect(heard)
+            if self._detected:
+                return  # its banner told (the dialect was taken then)
             if found is not None:
-                self.dialect = make_dialect(found)
-                self.dialect_found = f"found at connect (the board answered {found} style)"
+                self._take_dialect(make_dialect(found), f"found at connect (it answered {DETECT_COMMAND} {found}-style)")
                 return
         if heard:
             raise MotionError(
@@ -226,8 +240,9 @@ class LineProtocol:
             dialect = make_dialect(found)
             kind = dialect.classify(text).kind
             if kind is ReplyKind.BANNER:
-                self.boot_lines = [text]
-                await self._await_boot(self._reply_timeout_s, banner_seen=True, dialect=dialect)
+                self._take_dialect(dialect, f"found at connect (its banner '{text}')")
+                self._mark_reset(text)
+                await self._await_boot(self._reply_timeout_s, banner_seen=True)
                 return found
             if kind in (ReplyKind.OK, ReplyKind.ERROR, ReplyKind.ALARM, ReplyKind.HALT):
                 return found
@@ -279,6 +294,8 @@ class LineProtocol:
     def _note_unasked(self, raw: bytes, *, dialect: Dialect | None = None) -> None:
         """A line nobody asked for: a reset banner, boot chatter, an alarm, a late reply."""
         text = raw.decode("ascii", errors="replace").strip()
+        if dialect is None and self._auto and not self._detected:
+            dialect = self._banner_dialect(text)
         reply = (dialect or self.dialect).classify(text)
         if reply.kind is ReplyKind.BANNER:
             self._mark_reset(text)
@@ -288,6 +305,22 @@ class LineProtocol:
             self.boot_lines.append(text)
         else:
             log.debug("unasked line from %s: %r", self.port, text)
+
+    def _banner_dialect(self, text: str) -> Dialect | None:
+        """Before the dialect is known: the dialect whose banner ``text`` is, taken as found."""
+        guess = tell_apart(text)
+        if guess is None:
+            return None
+        dialect = make_dialect(guess)
+        if not dialect.is_banner(text):
+            return None
+        self._take_dialect(dialect, f"found at connect (its banner '{text}')")
+        return dialect
+
+    def _take_dialect(self, dialect: Dialect, how: str) -> None:
+        self.dialect = dialect
+        self.dialect_found = how
+        self._detected = True
 
     def _mark_reset(self, banner: str) -> None:
         self._forget(
@@ -311,21 +344,27 @@ class LineProtocol:
         try:
             await self.exchange(
                 self.dialect.sync_command, timeout_s=self._reply_timeout_s,
-                keep=(ReplyKind.REPORT, ReplyKind.STATE), skip_stale_ok=True, framed=False,
+                keep=(ReplyKind.REPORT, ReplyKind.STATE), skip_stale_ok=True, framed=False, own_line=True,
             )
         except Halted:
             pass
         self.needs_resync = False
         self._numbering = False
+        if self.numbered and self.halted is None and self._absolute_sent:
+            # Lines may have been lost either way: both sides start counting afresh.
+            await self._renumber()
+
+    async def _renumber(self) -> None:
+        await self.exchange(self.dialect.renumber(0), timeout_s=self._reply_timeout_s, framed=False)
+        self._numbering = True
+        self._next_number = 1
 
     # ---------------------------------------------------------- commands
 
     async def ensure_ready(self) -> None:
         """Line numbering (where used) and absolute coordinates, once per connection or reset."""
         if self.numbered and not self._numbering:
-            await self.exchange(self.dialect.renumber(0), timeout_s=self._reply_timeout_s, framed=False)
-            self._numbering = True
-            self._next_number = 1
+            await self._renumber()
         if not self._absolute_sent:
             await self.send(self.dialect.absolute_command)
             self._absolute_sent = True
@@ -436,6 +475,7 @@ class LineProtocol:
         ends_with_kept: bool = False,
         framed: bool = True,
         resend_damaged: bool = False,
+        own_line: bool = False,
     ) -> list[str]:
         """Write one line and collect its answer up to ok; every failure is a MotionError.
 
@@ -445,7 +485,8 @@ class LineProtocol:
         ``skip_stale_ok``: an ok before any kept line is a late answer to an earlier line;
         ``ends_with_kept``: the first kept line is the whole answer (no ok follows);
         ``framed``: numbered and checksummed, once numbering is on;
-        ``resend_damaged``: send again when refused as unreadable (our lines never are).
+        ``resend_damaged``: send again when refused as unreadable (our lines never are);
+        ``own_line``: one of the driver's lines, so such a refusal means damage on the way.
         """
         self.link.check_up()
         dialect = self.dialect
@@ -554,7 +595,14 @@ class LineProtocol:
             # A resend request, or a refusal: the line had no effect.
             if refused is not None:
                 self.needs_resync = True
-                if not (resend_damaged and dialect.damaged_in_transit(refused)) or sends > RESEND_LIMIT:
+                damaged = (own_line or resend_damaged) and dialect.damaged_in_transit(refused)
+                if damaged and (not resend_damaged or sends > RESEND_LIMIT):
+                    raise MotionError(
+                        f"controller on {self.port} could not read '{line}' ({refused.detail}), {sends} time(s) in a "
+                        "row: the line is damaged on the way. Check the USB cable (shorter, shielded, away from "
+                        "motor wires) and the board's ground"
+                    )
+                if not damaged:
                     raise MotionError(f"controller refused '{line}': {refused.detail}")
                 await self._resync()
                 if number is not None:

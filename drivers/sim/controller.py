@@ -231,6 +231,8 @@ class GcodeEmulator:
         self._limit_next = False
 
         self.received: list[tuple[float, str]] = []
+        self.busy_sent = 0  # keep-alive lines sent (RepRap dialect)
+        self.line_noise = False  # while True every line from the host arrives damaged (a bad cable)
         self._pending: collections.deque[str] = collections.deque()
         self._inbuf = b""
         self._master_fd: int | None = None
@@ -477,7 +479,7 @@ class GcodeEmulator:
         lines = []
         for raw in complete:
             raw = raw.rstrip(b"\r")
-            if self._corrupt_next and raw.strip():
+            if (self._corrupt_next or self.line_noise) and raw.strip():
                 self._corrupt_next = False
                 middle = len(raw) // 2
                 raw = raw[:middle] + bytes([_NOISE_BYTE]) + raw[middle + 1:]
@@ -732,6 +734,7 @@ class RepRapFirmware:
             self.b._reply(REPRAP.numbered_ok(self._number, free, _INPUT_BUFFER_LINES - len(self.b._pending)))
 
     def _busy(self) -> None:
+        self.b.busy_sent += 1
         self.b._write_lines([REPRAP.busy_line])
 
     def execute(self, text: str) -> None:
