@@ -278,9 +278,10 @@ class ReplayCamera:
                     self._origin_um = here
                 dx_px = (here[0] - self._origin_um[0]) / self._target_um
                 dy_px = (here[1] - self._origin_um[1]) / self._target_um
-        left = round((cols - width) / 2 + dx_px)
-        top = round((rows - height) / 2 + dy_px)
-        if left < 0 or top < 0 or left + width > cols or top + height > rows:
+        left_f = (cols - width) // 2 + dx_px
+        top_f = (rows - height) // 2 + dy_px
+        left, top = math.floor(left_f), math.floor(top_f)
+        if left_f < 0 or top_f < 0 or left_f + width > cols or top_f + height > rows:
             covers = f"{cols * self._target_um:.0f} x {rows * self._target_um:.0f} um"
             if self._opts.follow_stage:
                 raise CameraError(
@@ -291,7 +292,11 @@ class ReplayCamera:
                 f"replay images cover {covers} at the profile's pixel size, less than a {width}x{height} px frame; "
                 "lower width_px/height_px in [camera] or check recorded_pixel_size_um"
             )
-        return image[top:top + height, left:left + width].copy()
+        if left_f == left and top_f == top:
+            return image[top:top + height, left:left + width].copy()
+        # A stage position between pixels: the frame is cut there, bicubic (OpenCV).
+        shift = np.array([[1.0, 0.0, -left_f], [0.0, 1.0, -top_f]])
+        return cv2.warpAffine(image, shift, (width, height), flags=cv2.INTER_CUBIC, borderMode=cv2.BORDER_REPLICATE)
 
     def _scan(self) -> None:
         files = list_images(self._folder)
