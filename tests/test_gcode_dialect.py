@@ -406,7 +406,7 @@ def test_grbl_is_a_dialect_documented_in_its_module():
     [
         ("ok", ReplyKind.OK, ""),
         ("error:20", ReplyKind.ERROR, "error 20: unsupported or invalid G-code command"),
-        ("error:9", ReplyKind.ERROR, "error 9: G-code locked out during alarm or jog state"),
+        ("error:9", ReplyKind.ALARM, "alarm lock (error 9: G-code locked out during alarm or jog state)"),
         ("error:99", ReplyKind.ERROR, "error 99: unknown error"),
         ("ALARM:3", ReplyKind.ALARM, "alarm 3: reset while in motion; position lost"),
         ("Grbl 1.1h ['$' for help]", ReplyKind.BANNER, ""),
@@ -472,7 +472,7 @@ def test_grbl_lines_that_move_or_wait():
     ]
     assert [line for line in ("G1 X1", "G4 P0", "$H", "$I") if d.waits_for_motion(line)] == ["G4 P0", "$H"]
     damaged = d.classify("error:2")
-    assert d.damaged_in_transit(damaged) and not d.damaged_in_transit(d.classify("error:9"))
+    assert d.damaged_in_transit(damaged) and not d.damaged_in_transit(d.classify("error:5"))
 
 
 # ---------------------------------------------------------------- telling them apart

@@ -681,3 +681,18 @@ async def test_grbl_declared_position_is_a_work_offset_the_driver_follows():
         await r.driver.home()
         assert await r.driver.position() == HOME
         assert r.emulator.physical_position() == HOME
+
+
+async def test_grbl_board_found_locked_loses_the_position_and_is_homed():
+    async with rig(dialect="grbl") as r:
+        await r.driver.move_to(x_um=3000.0)
+        # The board slipped into its lock unseen (say, someone typed on another link):
+        # the refusal error:9 counts as an alarm, not as a plain refusal.
+        r.emulator._fw._locked = True  # type: ignore[attr-defined]
+        with pytest.raises(MotionError, match=r"halted \(alarm lock \(error 9"):
+            await r.driver.move_to(x_um=4000.0)
+        assert r.emulator.physical_position().x_um == pytest.approx(3000.0)
+        with pytest.raises(PositionUnknownError, match="alarm lock"):
+            await r.driver.position()
+        await r.driver.home()
+        assert await r.driver.move_to(x_um=4000.0) == Position(4000.0, 0.0, 0.0)

@@ -262,6 +262,17 @@ class Dialect(Protocol):
         ...
 
 
+def linear_move(*, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
+    """``G1`` naming the given axes, in millimetres, at the feed rate: the same in every dialect."""
+    words = [f"{axis}{format_mm(value)}" for axis, value in zip("XYZ", (x_um, y_um, z_um)) if value is not None]
+    return f"G1 {' '.join(words)} F{format_feed(feed_um_s)}"
+
+
+def declare_position(x_um: float, y_um: float, z_um: float) -> str:
+    """``G92`` with all three axes: the same in every dialect."""
+    return f"G92 X{format_mm(x_um)} Y{format_mm(y_um)} Z{format_mm(z_um)}"
+
+
 def line_checksum(text: str) -> int:
     """The RepRap line checksum: XOR of the bytes of ``text`` (everything before ``*``)."""
     value = 0
@@ -360,11 +371,10 @@ class RepRapDialect:
         return f"{self.renumber_command} N{last}"
 
     def move(self, *, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
-        words = [f"{axis}{format_mm(value)}" for axis, value in zip("XYZ", (x_um, y_um, z_um)) if value is not None]
-        return f"G1 {' '.join(words)} F{format_feed(feed_um_s)}"
+        return linear_move(x_um=x_um, y_um=y_um, z_um=z_um, feed_um_s=feed_um_s)
 
     def set_position(self, x_um: float, y_um: float, z_um: float) -> str:
-        return f"G92 X{format_mm(x_um)} Y{format_mm(y_um)} Z{format_mm(z_um)}"
+        return declare_position(x_um, y_um, z_um)
 
     def lamp(self, channel: int, level: float) -> str:
         duty = round(level * 255)

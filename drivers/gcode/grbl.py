@@ -44,7 +44,7 @@ from __future__ import annotations
 import re
 
 from drivers.base import Position
-from drivers.gcode.dialect import Reply, ReplyKind, format_feed, format_mm, mm_to_um
+from drivers.gcode.dialect import Reply, ReplyKind, declare_position, linear_move, mm_to_um
 
 BANNER = "Grbl 1.1h ['$' for help]"
 SOFT_RESET = b"\x18"
@@ -76,6 +76,7 @@ ERRORS: dict[int, str] = {
     33: "invalid motion target",
     36: "unused value words",
 }
+LOCKED_ERROR = 9
 # A refusal that a well-formed line can only get if it was damaged on the way.
 DAMAGE_ERRORS = frozenset({1, 2, 3, 20, 21, 22, 23, 25, 26, 33, 36})
 
@@ -160,11 +161,10 @@ class GrblDialect:
         raise NotImplementedError("grbl lines carry no numbers")
 
     def move(self, *, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
-        words = [f"{axis}{format_mm(value)}" for axis, value in zip("XYZ", (x_um, y_um, z_um)) if value is not None]
-        return f"G1 {' '.join(words)} F{format_feed(feed_um_s)}"
+        return linear_move(x_um=x_um, y_um=y_um, z_um=z_um, feed_um_s=feed_um_s)
 
     def set_position(self, x_um: float, y_um: float, z_um: float) -> str:
-        return f"G92 X{format_mm(x_um)} Y{format_mm(y_um)} Z{format_mm(z_um)}"
+        return declare_position(x_um, y_um, z_um)
 
     def lamp(self, channel: int, level: float) -> str:
         if channel == 0:
@@ -188,6 +188,9 @@ class GrblDialect:
         m = _ERROR.fullmatch(text)
         if m:
             code = int(m.group(1))
+            if code == LOCKED_ERROR:
+                # Refused because the board sits in its alarm lock: as good as an alarm.
+                return Reply(ReplyKind.ALARM, text, f"alarm lock (error {code}: {error_text(code)})")
             return Reply(ReplyKind.ERROR, text, f"error {code}: {error_text(code)}")
         m = _ALARM.fullmatch(text)
         if m:

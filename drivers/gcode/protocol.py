@@ -386,8 +386,7 @@ class LineProtocol:
         name = self._report_name()
         if request.endswith(b"\n"):
             return await self.exchange(
-                name, timeout_s=self._reply_timeout_s, keep=(ReplyKind.REPORT,), skip_stale_ok=skip_stale_ok,
-                framed=not skip_stale_ok,
+                name, timeout_s=self._reply_timeout_s, keep=(ReplyKind.REPORT,), skip_stale_ok=skip_stale_ok
             )
         return await self.exchange(
             name, data=request, timeout_s=self._reply_timeout_s, keep=(ReplyKind.REPORT,), skip_stale_ok=True,

@@ -414,22 +414,6 @@ class GcodeEmulator:
             lines = lines[1:]
         self._write_lines(list(lines))
 
-    def _reply(self, *lines: str) -> None:
-        """Send the reply to one command, through the injected reply faults."""
-        if self._drop_next:
-            self._drop_next = False
-            return
-        if self._garble_next and lines:
-            self._garble_next = False
-            noise = bytes((b ^ 0x5A) | 0x80 for b in lines[0].encode("ascii"))
-            if self._master_fd is not None:
-                try:
-                    os.write(self._master_fd, noise + b"\n")
-                except OSError:
-                    pass
-            lines = lines[1:]
-        self._write_lines(list(lines))
-
     # ------------------------------------------------------------ serving
 
     def _serve(self) -> None:
