@@ -43,23 +43,27 @@ def make(
     return emulator, client
 
 
-@pytest.fixture
-def fast() -> Iterator[tuple[GcodeEmulator, RawClient, ScaledClock]]:
-    clock = ScaledClock(speed=200.0, start_s=1_772_442_000.0)
-    emulator, client = make(clock)
+Board = tuple[GcodeEmulator, RawClient, ScaledClock]
+FAST_SPEED = 200.0
+FROZEN_SPEED = 1e-6  # a clock that only moves when the test advances it, for exact kinematics
+
+
+def serve(speed: float, dialect: str = "reprap") -> Iterator[Board]:
+    clock = ScaledClock(speed=speed, start_s=1_772_442_000.0)
+    emulator, client = make(clock, dialect=dialect)
     yield emulator, client, clock
     client.close()
     emulator.stop()
 
 
 @pytest.fixture
-def frozen() -> Iterator[tuple[GcodeEmulator, RawClient, ScaledClock]]:
-    """A clock that only moves when the test advances it, for exact kinematics."""
-    clock = ScaledClock(speed=1e-6, start_s=1_772_442_000.0)
-    emulator, client = make(clock)
-    yield emulator, client, clock
-    client.close()
-    emulator.stop()
+def fast() -> Iterator[Board]:
+    yield from serve(FAST_SPEED)
+
+
+@pytest.fixture
+def frozen() -> Iterator[Board]:
+    yield from serve(FROZEN_SPEED)
 
 
 # The report common printer firmware gives (from memory): axes, then extruder and step counts.
@@ -509,21 +513,13 @@ def test_long_waits_send_busy_keepalives():
 
 
 @pytest.fixture
-def grbl_fast() -> Iterator[tuple[GcodeEmulator, RawClient, ScaledClock]]:
-    clock = ScaledClock(speed=200.0, start_s=1_772_442_000.0)
-    emulator, client = make(clock, dialect="grbl")
-    yield emulator, client, clock
-    client.close()
-    emulator.stop()
+def grbl_fast() -> Iterator[Board]:
+    yield from serve(FAST_SPEED, "grbl")
 
 
 @pytest.fixture
-def grbl_frozen() -> Iterator[tuple[GcodeEmulator, RawClient, ScaledClock]]:
-    clock = ScaledClock(speed=1e-6, start_s=1_772_442_000.0)
-    emulator, client = make(clock, dialect="grbl")
-    yield emulator, client, clock
-    client.close()
-    emulator.stop()
+def grbl_frozen() -> Iterator[Board]:
+    yield from serve(FROZEN_SPEED, "grbl")
 
 
 STATUS = re.compile(r"^<(\w+(?::\d)?)\|MPos:(-?\d+\.\d{3}),(-?\d+\.\d{3}),(-?\d+\.\d{3})\|FS:\d+,0(\|WCO:[-\d.,]+)?>$")

@@ -85,9 +85,8 @@ class LineProtocol:
         line_checksums: bool = True,
     ) -> None:
         self._auto = dialect == "auto"
-        self.dialect: Dialect = make_dialect("reprap") if isinstance(dialect, str) and self._auto else (
-            make_dialect(dialect) if isinstance(dialect, str) else dialect
-        )
+        # With "auto", the RepRap family's stands in (for messages) until the board is asked.
+        self.dialect: Dialect = make_dialect("reprap" if self._auto else dialect) if isinstance(dialect, str) else dialect
         self.dialect_found = "not connected yet" if self._auto else "set in the profile"
         self.link = SerialLink(port, baud, write_timeout_s=reply_timeout_s, on_lost=self._link_lost)
         self._reply_timeout_s = reply_timeout_s
