@@ -15,6 +15,9 @@
   ``SensorTimestamp`` (start of exposure, boot-time clock in ns) is earlier, and after a
   change of exposure or gain also those not yet taken with the new settings (bounded).
   Without timestamps it discards ``flush_frames`` frames instead.
+* **What the camera offers** (:meth:`BoardCamera.probe`, for ``check --probe``): the
+  sensor modes and the control table, read when the camera opens
+  (:func:`drivers.camera_probe.board_offer`).
 """
 
 from __future__ import annotations
@@ -35,6 +38,7 @@ from drivers.camera_common import (
     db_to_amplitude_factor,
     to_mono,
 )
+from drivers.camera_probe import board_offer, profile_warnings
 from drivers.clock import Clock, WallClock
 from drivers.registry import CameraContext, CameraDriver
 from drivers.sections import CameraSection
@@ -96,6 +100,8 @@ class BoardCamera:
         self._has_colour_gains = False
         self._last_metadata: dict[str, Any] = {}
         self._discarded_total = 0
+        self._camera_controls: dict[str, Any] = {}
+        self._sensor_modes: list[dict[str, Any]] = []
 
     # ---------------------------------------------------------------- public API
 
@@ -162,6 +168,19 @@ class BoardCamera:
             "frames_discarded": self._discarded_total,
         }
 
+    async def probe(self) -> dict[str, object]:
+        """What the camera offers (sensor modes, manual controls), with warnings for a time-lapse."""
+        if self._cam is None:
+            raise CameraError("board camera is not open; open it before probing")
+        offer = board_offer(self._camera_controls, self._sensor_modes)
+        if not self._sensor_modes:
+            offer.warnings.append("the camera library listed no sensor modes")
+        cfg = self._cfg
+        offer.warnings += profile_warnings(
+            offer, width_px=cfg.width_px, height_px=cfg.height_px, bit_depth=cfg.bit_depth, scaled=True
+        )
+        return offer.as_dict()
+
     # ---------------------------------------------------------- blocking helpers
 
     def _open_blocking(self) -> None:
@@ -180,6 +199,11 @@ class BoardCamera:
                     "cable and that the camera is enabled on the board"
                 ) from None
             try:
+                # Listing the modes reconfigures the sensor: only while it is not running.
+                self._sensor_modes = [dict(m) for m in getattr(cam, "sensor_modes", None) or []]
+            except Exception:  # some sensors cannot list their modes; the report says so
+                self._sensor_modes = []
+            try:
                 config = cam.create_video_configuration(
                     main={"size": (self._cfg.width_px, self._cfg.height_px), "format": MAIN_FORMAT}
                 )
@@ -188,6 +212,7 @@ class BoardCamera:
                 self._size = (int(main["size"][0]), int(main["size"][1]))
                 self._stride_format = str(main.get("format", MAIN_FORMAT))
                 self._read_limits(cam.camera_controls)
+                self._camera_controls = dict(cam.camera_controls)
                 # The profile's defaults must suit this sensor too, or the error says what does.
                 lo, hi = self._exposure_range_ms or (None, None)
                 check_exposure_ms(self._exposure_ms, driver="board", lo_ms=lo, hi_ms=hi)

@@ -11,6 +11,12 @@ What this driver adds to a bare VideoCapture:
   to the camera as-is and reported as device units; measure the real gain with the
   photon-transfer characterisation. On other back ends the exposure units differ, so
   exposure is left to the camera and ``describe()`` says so.
+* **Automatic white balance off** where the V4L2 back end takes it (``CAP_PROP_AUTO_WB``
+  = 0): a colour camera's white balance feeds the luma, so automatic white balance would
+  make brightness drift between time points.
+* **What the camera offers** (:meth:`OpenCVCamera.probe`, for ``check --probe``): formats,
+  frame sizes and controls from ``v4l2-ctl`` (:mod:`drivers.camera_probe`), or, without
+  it, what the controls set at open showed.
 * **No stale frames.** Cameras queue frames in driver buffers; after a stage move the
   queued ones show the old position. Every grab first discards ``flush_frames`` frames
   with ``grab()`` and then retrieves the next one. The V4L2 buffer queue is also asked
@@ -41,6 +47,7 @@ import numpy as np
 
 from drivers.base import CameraError, Frame
 from drivers.camera_common import check_exposure_ms, check_gain_db, delivered_bit_depth, to_mono
+from drivers.camera_probe import CameraOffer, profile_warnings, run_v4l2_ctl, v4l2_offer
 from drivers.clock import Clock, WallClock
 from drivers.options import option
 from drivers.registry import CameraContext, CameraDriver
@@ -203,6 +210,42 @@ class OpenCVCamera:
             "reconnect_rounds_failed": self._failed_rounds,
         }
 
+    async def probe(self) -> dict[str, object]:
+        """What the camera offers (formats, sizes, manual controls), with warnings for a time-lapse."""
+        listings = await asyncio.to_thread(run_v4l2_ctl, self._opts.device)
+        if isinstance(listings, str):
+            offer = self._offer_from_controls(listings)
+        else:
+            offer = v4l2_offer(*listings)
+        cfg = self._cfg
+        offer.warnings += profile_warnings(offer, width_px=cfg.width_px, height_px=cfg.height_px, bit_depth=cfg.bit_depth)
+        return offer.as_dict()
+
+    def _offer_from_controls(self, why: str) -> CameraOffer:
+        """Without v4l2-ctl: what setting the controls at open showed (OpenCV properties)."""
+        controls = self._controls
+
+        def took(name: str) -> bool | None:
+            state = controls.get(name)
+            return None if state is None or not state.accepted else state.effective
+
+        ae_off, awb_off = took("auto_exposure_off"), took("auto_white_balance_off")
+        warnings = [why]
+        if ae_off is False or (self._backend == "V4L2" and ae_off is None):
+            warnings.append("automatic exposure could not be turned off; brightness will drift between time points")
+        if awb_off is False:
+            warnings.append("automatic white balance could not be turned off")
+        return CameraOffer(
+            source="OpenCV properties",
+            formats=[],
+            manual_exposure=bool(took("exposure")),
+            manual_gain=bool(took("gain")),
+            auto_exposure_can_be_off=ae_off,
+            auto_white_balance_can_be_off=awb_off,
+            controls={},
+            warnings=warnings,
+        )
+
     # ---------------------------------------------------------- blocking helpers
 
     def _locked(self, fn: Callable[[], None]) -> None:
@@ -237,6 +280,7 @@ class OpenCVCamera:
             self._configure_format()
             self._apply_exposure()
             self._apply_gain()
+            self._apply_white_balance()
             # One frame now tells what the camera really delivers (size, depth, colour).
             try:
                 pixels = self._read_one()
@@ -296,6 +340,13 @@ class OpenCVCamera:
         state = self._set_and_read("exposure", cv2.CAP_PROP_EXPOSURE, float(sent))
         state.requested = self._exposure_ms
         state.note = "sent in V4L2 units of 100 µs"
+
+    def _apply_white_balance(self) -> None:
+        if self._backend != "V4L2":
+            return
+        state = self._set_and_read("auto_white_balance_off", cv2.CAP_PROP_AUTO_WB, 0.0)
+        if not state.accepted:
+            state.note = "not taken: no automatic white balance (a monochrome camera) or it cannot be turned off"
 
     def _apply_gain(self) -> None:
         state = self._set_and_read("gain", cv2.CAP_PROP_GAIN, self._gain_db)

@@ -1,9 +1,20 @@
 """A camera that plays a folder of images in a loop: demos, benchmarks, offline work.
 
 Images are taken in name order (TIFF through tifffile, PNG and JPEG through OpenCV),
-8- or 16-bit, colour reduced to luma. Every image must have the same size and bit depth;
-``describe()`` reports the folder's frame size (``width_px``/``height_px`` in the profile
-are not used to resize anything).
+8- or 16-bit, colour reduced to luma. Every image must have the same size and bit depth.
+By default frames are the images as they are (``width_px``/``height_px`` in the profile
+are not used).
+
+**At the profile's pixel size.** With ``recorded_pixel_size_um`` (the sample-plane size
+of one pixel of the recorded images) each image is resampled to the profile's pixel size
+(``[optics]``: camera pixel over magnification) with OpenCV (area averaging to shrink,
+bicubic to enlarge) and the frame is cut from its centre at ``width_px`` x ``height_px``,
+so a folder recorded on another scope plays as this scope would see it. With
+``follow_stage`` too, the frame is cut where the stage is, measured from the first known
+stage position (the image centre): moving the stage pans across a large recorded image
+(a mosaic), so ``commission`` can be rehearsed on recorded images with a known answer:
+the replayed camera is square to the stage (image columns along +x, rows along +y), not
+mirrored, at exactly the profile's pixel size.
 
 Frames come at ``replay_fps`` on the scope's clock: frame *k* is due at
 ``t_open + k / replay_fps``, and :meth:`ReplayCamera.grab` returns the next frame that
@@ -23,6 +34,7 @@ import asyncio
 import dataclasses
 import math
 import threading
+from collections.abc import Callable
 from pathlib import Path
 
 import cv2
@@ -91,14 +103,55 @@ def decode_image(path: Path) -> np.ndarray:
 class ReplayOptions:
     replay_dir: str = option("", doc="folder of images played in a loop")
     replay_fps: float = option(30.0, doc="frame rate of the replay", min=0.1, max=240.0, unit="fps")
+    recorded_pixel_size_um: float | None = option(
+        None,
+        doc="sample-plane pixel size the images were recorded at; when set, they are resampled to the "
+        "profile's pixel size and cut to width_px x height_px",
+        min=0.01,
+        max=100.0,
+        unit="um",
+    )
+    follow_stage: bool = option(
+        False, doc="cut each frame where the stage is, so stage moves pan across the recorded images (needs recorded_pixel_size_um)"
+    )
 
     def __post_init__(self) -> None:
         if not self.replay_dir:
             raise ValueError("replay_dir: the replay driver needs a folder of images")
+        if self.follow_stage and self.recorded_pixel_size_um is None:
+            raise ValueError("follow_stage: needs recorded_pixel_size_um, the pixel size the images were recorded at")
+
+
+StagePosition = Callable[[], "tuple[float, float] | None"]
+
+
+def resample_to_pixel_size(pixels: np.ndarray, recorded_um: float, target_um: float) -> np.ndarray:
+    """``pixels`` recorded at ``recorded_um`` per pixel, resampled to ``target_um`` per pixel.
+
+    OpenCV's area averaging when shrinking (no aliasing), bicubic when enlarging; the
+    result keeps the dtype (values clipped by OpenCV's saturating cast).
+    """
+    scale = recorded_um / target_um
+    if abs(scale - 1.0) < 1e-9:
+        return pixels
+    height, width = pixels.shape
+    size = (max(1, round(width * scale)), max(1, round(height * scale)))
+    interpolation = cv2.INTER_AREA if scale < 1.0 else cv2.INTER_CUBIC
+    return cv2.resize(pixels, size, interpolation=interpolation)
 
 
 class ReplayCamera:
-    def __init__(self, camera: CameraSection, clock: Clock, *, cache_bytes: int = DEFAULT_CACHE_BYTES) -> None:
+    def __init__(
+        self,
+        camera: CameraSection,
+        clock: Clock,
+        *,
+        cache_bytes: int = DEFAULT_CACHE_BYTES,
+        pixel_size_um: float | None = None,
+        stage_position: StagePosition | None = None,
+    ) -> None:
+        """``pixel_size_um``: the profile's (needed with ``recorded_pixel_size_um``);
+        ``stage_position``: where the stage is, x and y in um, or None while unknown."""
         if camera.options is None:
             raise CameraError("the replay camera needs a folder of images: set `replay_dir` in [camera]")
         self._cfg = camera
@@ -119,6 +172,13 @@ class ReplayCamera:
         self._gain_db = check_gain_db(camera.gain_db, driver="replay")
         self._decodes = 0
         self._open = False
+        self._target_um = pixel_size_um
+        self._stage_position = stage_position
+        self._origin_um: tuple[float, float] | None = None
+        if self._opts.recorded_pixel_size_um is not None and pixel_size_um is None:
+            raise CameraError("the replay camera needs the profile's pixel size to replay at it ([optics])")
+        if self._opts.follow_stage and stage_position is None:
+            raise CameraError("the replay camera's follow_stage needs the stage: open it with a stage driver")
 
     async def open(self) -> None:
         await asyncio.to_thread(self._scan)
@@ -158,7 +218,7 @@ class ReplayCamera:
                 raise
             pixels = await decoding
         return Frame(
-            pixels=pixels.copy(),  # callers may work in place; the cached frame must stay intact
+            pixels=self._frame(pixels),  # a copy: callers may work in place, the cached image stays intact
             t_s=due_s,
             exposure_ms=self._exposure_ms,
             gain_db=self._gain_db,
@@ -173,11 +233,17 @@ class ReplayCamera:
 
     def describe(self) -> dict[str, object]:
         width, height = self._size or (None, None)
+        if self._opts.recorded_pixel_size_um is not None:
+            width, height = self._cfg.width_px, self._cfg.height_px
         return {
             "driver": "replay",
             "device": str(self._folder),
             "frames": len(self._files),
             "resolution": {"width_px": width, "height_px": height},
+            "recorded_size": {"width_px": (self._size or (None, None))[0], "height_px": (self._size or (None, None))[1]},
+            "recorded_pixel_size_um": self._opts.recorded_pixel_size_um,
+            "pixel_size_um": self._target_um if self._opts.recorded_pixel_size_um is not None else None,
+            "follow_stage": self._opts.follow_stage,
             "bit_depth": self._bit_depth,
             "fps": self._opts.replay_fps,
             "exposure_ms": self._exposure_ms,
@@ -195,6 +261,42 @@ class ReplayCamera:
         }
 
     # ---------------------------------------------------------- blocking helpers
+
+    def _frame(self, image: np.ndarray) -> np.ndarray:
+        """The frame cut from a (resampled) image: all of it, its centre, or where the stage is."""
+        if self._opts.recorded_pixel_size_um is None:
+            return image.copy()
+        assert self._target_um is not None
+        width, height = self._cfg.width_px, self._cfg.height_px
+        rows, cols = image.shape
+        dx_px = dy_px = 0.0
+        if self._opts.follow_stage:
+            assert self._stage_position is not None
+            here = self._stage_position()
+            if here is not None:
+                if self._origin_um is None:
+                    self._origin_um = here
+                dx_px = (here[0] - self._origin_um[0]) / self._target_um
+                dy_px = (here[1] - self._origin_um[1]) / self._target_um
+        left_f = (cols - width) // 2 + dx_px
+        top_f = (rows - height) // 2 + dy_px
+        left, top = math.floor(left_f), math.floor(top_f)
+        if left_f < 0 or top_f < 0 or left_f + width > cols or top_f + height > rows:
+            covers = f"{cols * self._target_um:.0f} x {rows * self._target_um:.0f} um"
+            if self._opts.follow_stage:
+                raise CameraError(
+                    f"replay: the stage has moved {dx_px * self._target_um:.0f}, {dy_px * self._target_um:.0f} um "
+                    f"from where replay started, beyond the recorded images ({covers}); move back or record a larger mosaic"
+                )
+            raise CameraError(
+                f"replay images cover {covers} at the profile's pixel size, less than a {width}x{height} px frame; "
+                "lower width_px/height_px in [camera] or check recorded_pixel_size_um"
+            )
+        if left_f == left and top_f == top:
+            return image[top:top + height, left:left + width].copy()
+        # A stage position between pixels: the frame is cut there, bicubic (OpenCV).
+        shift = np.array([[1.0, 0.0, -left_f], [0.0, 1.0, -top_f]])
+        return cv2.warpAffine(image, shift, (width, height), flags=cv2.INTER_CUBIC, borderMode=cv2.BORDER_REPLICATE)
 
     def _scan(self) -> None:
         files = list_images(self._folder)
@@ -229,6 +331,9 @@ class ReplayCamera:
                 f"replay image {path} decodes to {pixels.shape[1]}x{pixels.shape[0]} px, not the "
                 f"{width}x{height} px its folder uses; use one size per folder"
             )
+        if self._opts.recorded_pixel_size_um is not None:
+            assert self._target_um is not None
+            pixels = resample_to_pixel_size(pixels, self._opts.recorded_pixel_size_um, self._target_um)
         pixels.setflags(write=False)
         with self._cache_lock:
             if self._dtype is None:
@@ -245,8 +350,19 @@ class ReplayCamera:
         return pixels
 
 
+def _stage_xy(motion: object) -> tuple[float, float] | None:
+    where = getattr(motion, "describe")().get("position_um")
+    return None if where is None else (float(where["x"]), float(where["y"]))
+
+
 def open_camera(ctx: CameraContext) -> ReplayCamera:
-    return ReplayCamera(ctx.profile.camera, ctx.clock)
+    motion = ctx.stage.motion
+    return ReplayCamera(
+        ctx.profile.camera,
+        ctx.clock,
+        pixel_size_um=ctx.profile.optics.pixel_size_um,
+        stage_position=lambda: _stage_xy(motion),
+    )
 
 
 DRIVER = CameraDriver(

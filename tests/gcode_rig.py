@@ -62,17 +62,25 @@ class RawClient:
     def send(self, line: str) -> None:
         self.port.write(f"{line}\n".encode("ascii"))
 
-    def read_line(self, timeout_s: float = 2.0) -> bytes | None:
+    def send_bytes(self, data: bytes) -> None:
+        self.port.write(data)
+
+    def read_line(self, timeout_s: float = 2.0, *, keep_busy: bool = False) -> bytes | None:
+        """The next line; keep-alive (busy) lines are passed over unless ``keep_busy``."""
         deadline = time.monotonic() + timeout_s
         buffer = b""
         while time.monotonic() < deadline:
             buffer += self.port.read(1)
             if buffer.endswith(b"\n"):
-                return buffer.rstrip(b"\r\n")
+                line = buffer.rstrip(b"\r\n")
+                if not keep_busy and line.startswith(b"echo:busy"):
+                    buffer = b""
+                    continue
+                return line
         return None
 
     def ask(self, line: str, timeout_s: float = 2.0) -> list[str]:
-        """Send ``line``; return the reply lines through the first ``ok``/``Error:``/``!!``."""
+        """Send ``line``; return the reply lines through the first ok or refusal of either dialect."""
         self.send(line)
         reply: list[str] = []
         while True:
@@ -81,8 +89,16 @@ class RawClient:
                 raise TimeoutError(f"no complete reply to {line!r}; got {reply!r}")
             text = raw.decode("ascii", errors="replace")
             reply.append(text)
-            if text == "ok" or text.startswith("Error:") or text.startswith("!!"):
+            if text == "ok" or text.startswith(("ok N", "Error:", "!!", "error:", "ALARM:")):
                 return reply
+
+    def status(self, timeout_s: float = 2.0) -> str:
+        """grbl's real-time status report: ``?`` without a newline, one line back."""
+        self.send_bytes(b"?")
+        raw = self.read_line(timeout_s)
+        if raw is None:
+            raise TimeoutError("no status report")
+        return raw.decode("ascii", errors="replace")
 
     def silent_for(self, seconds: float) -> bool:
         """True if not a single byte arrives for ``seconds``."""

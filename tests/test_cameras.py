@@ -796,3 +796,133 @@ async def test_board_camera_refuses_what_the_sensor_cannot_do(monkeypatch: pytes
     monkeypatch.setitem(sys.modules, "picamera2", module)
     with pytest.raises(CameraError, match=r"^board camera 0 not found .*check the ribbon cable"):
         await BoardCamera(CameraSection(driver="board")).open()
+
+
+# ------------------------------------------------- replay at the profile's pixel size
+
+
+def sinusoid_image(width: int, height: int, period_px: float, seed: int = 7) -> np.ndarray:
+    """16-bit grey: a sinusoid along x of the given period plus smooth texture."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:height, 0:width]
+    texture = cv2.GaussianBlur(rng.normal(0.0, 1.0, (height, width)), (0, 0), 6.0)
+    texture /= np.abs(texture).max()
+    level = 30000 + 20000 * np.sin(2 * np.pi * xx / period_px) + 8000 * texture + 0 * yy
+    return np.clip(level, 0, 65535).astype(np.uint16)
+
+
+def dominant_period_px(pixels: np.ndarray) -> float:
+    """Period of the strongest frequency along x, from the FFT of the mean row."""
+    row = pixels.astype(float).mean(axis=0)
+    spectrum = np.abs(np.fft.rfft((row - row.mean()) * np.hanning(row.size)))
+    k = int(np.argmax(spectrum[1:])) + 1
+    # Parabolic interpolation of the peak (common practice) for sub-bin precision.
+    a, b, c = spectrum[k - 1], spectrum[k], spectrum[k + 1]
+    k_fine = k + 0.5 * (a - c) / (a - 2 * b + c)
+    return row.size / k_fine
+
+
+def pixel_replay(folder: Path, recorded_um: float, *, follow: bool = False, **changes: Any) -> CameraSection:
+    opts = ReplayOptions(replay_dir=str(folder), replay_fps=15.0, recorded_pixel_size_um=recorded_um, follow_stage=follow)
+    return CameraSection(driver="replay", options=opts, **changes)
+
+
+@pytest.mark.parametrize("recorded_um", [0.5, 0.25])
+async def test_replay_resamples_to_the_profiles_pixel_size(tmp_path: Path, recorded_um: float) -> None:
+    from skimage.transform import rescale
+
+    folder = tmp_path / "other-scope"
+    folder.mkdir()
+    target_um = 0.375  # 3.75 um camera pixels behind a 10x objective
+    period_um = 24.0
+    recorded = sinusoid_image(800, 600, period_um / recorded_um)
+    tifffile.imwrite(folder / "lr0412_b03.tif", recorded)
+    cam = ReplayCamera(pixel_replay(folder, recorded_um, width_px=320, height_px=240, bit_depth=16), VirtualClock(),
+                       pixel_size_um=target_um)
+    await cam.open()
+    frame = (await cam.grab()).pixels
+    info = cam.describe()
+    await cam.close()
+    assert frame.shape == (240, 320) and frame.dtype == np.uint16
+    assert info["resolution"] == {"width_px": 320, "height_px": 240}
+    assert info["recorded_size"] == {"width_px": 800, "height_px": 600}
+    # The same 24 um period now spans 24 / 0.375 = 64 pixels.
+    assert dominant_period_px(frame) == pytest.approx(period_um / target_um, rel=0.01)
+    # Against scikit-image's rescale (reference library), cut at the same centre.
+    scale = recorded_um / target_um
+    reference = rescale(recorded.astype(float), scale, order=3, anti_aliasing=scale < 1.0, preserve_range=True)
+    rows, cols = reference.shape
+    top, left = (rows - 240) // 2, (cols - 320) // 2
+    expected = reference[top:top + 240, left:left + 320]
+    assert np.mean(np.abs(frame.astype(float) - expected)) < 0.01 * 40000  # under 1 % of the sinusoid's swing
+
+
+async def test_replay_following_the_stage_pans_across_a_mosaic(tmp_path: Path) -> None:
+    from skimage.registration import phase_cross_correlation
+
+    folder = tmp_path / "mosaic"
+    folder.mkdir()
+    rng = np.random.default_rng(3)
+    mosaic = cv2.GaussianBlur(rng.integers(0, 255, (900, 1200)).astype(np.uint8), (0, 0), 2.0)
+    cv2.imwrite(str(folder / "lr0412_mosaic.png"), mosaic)
+    stage_xy = [(50000.0, 30000.0)]
+    cam = ReplayCamera(pixel_replay(folder, 0.375, follow=True, width_px=256, height_px=192), VirtualClock(),
+                       pixel_size_um=0.375, stage_position=lambda: stage_xy[0])
+    await cam.open()
+    first = (await cam.grab()).pixels
+    stage_xy[0] = (50000.0 + 30.0, 30000.0 - 15.0)
+    moved = (await cam.grab()).pixels
+    # Phase correlation (scikit-image, reference library): 30 um along +x at 0.375 um/px is
+    # 80 columns, -15 um along y is -40 rows.
+    shift, _, _ = phase_cross_correlation(first, moved, upsample_factor=10)
+    assert shift == pytest.approx((-40.0, 80.0), abs=0.1)
+    stage_xy[0] = (50000.0 + 500.0, 30000.0)
+    with pytest.raises(CameraError, match=r"the stage has moved 500, 0 um from where replay started, beyond the recorded images"):
+        await cam.grab()
+    await cam.close()
+
+
+async def test_replay_at_a_pixel_size_refuses_what_it_cannot_do(tmp_path: Path) -> None:
+    folder = tmp_path / "small"
+    folder.mkdir()
+    cv2.imwrite(str(folder / "a.png"), np.zeros((100, 100), np.uint8))
+    with pytest.raises(ValueError, match="follow_stage: needs recorded_pixel_size_um"):
+        ReplayOptions(replay_dir=str(folder), follow_stage=True)
+    with pytest.raises(CameraError, match=r"needs the profile's pixel size"):
+        ReplayCamera(pixel_replay(folder, 0.5), VirtualClock())
+    cam = ReplayCamera(pixel_replay(folder, 0.5, width_px=640, height_px=480), VirtualClock(), pixel_size_um=0.375)
+    await cam.open()
+    with pytest.raises(CameraError, match=r"replay images cover 50 x 50 um .* less than a 640x480 px frame"):
+        await cam.grab()
+    await cam.close()
+
+
+async def test_replay_following_the_simulated_stage_is_a_rehearsal_with_a_known_answer(tmp_path: Path) -> None:
+    """Through the registry, the replay camera pans with the stage the profile drives."""
+    from skimage.registration import phase_cross_correlation
+
+    from daemon.hardware import build_scope
+    from daemon.profile import load_profile
+
+    folder = tmp_path / "mosaic"
+    folder.mkdir()
+    rng = np.random.default_rng(11)
+    cv2.imwrite(str(folder / "lr0412_mosaic.png"), cv2.GaussianBlur(rng.integers(0, 255, (800, 800)).astype(np.uint8), (0, 0), 2.0))
+    text = (Path(__file__).parents[1] / "hw_profiles" / "sim.toml").read_text()
+    camera = text[text.index("[camera]"):text.index("[optics]")]
+    replay = (f'[camera]\ndriver = "replay"\nwidth_px = 256\nheight_px = 192\nreplay_dir = "{folder}"\n'
+              'recorded_pixel_size_um = 0.375\nfollow_stage = true\n\n')
+    profile_path = tmp_path / "rehearsal.toml"
+    profile_path.write_text(text.replace(camera, replay))
+    scope = build_scope(load_profile(profile_path), sim_speed=200.0)
+    async with scope:
+        here = await scope.position()
+        first = (await scope.capture()).pixels
+        await scope.move_to(x_um=here.x_um + 20.0, y_um=here.y_um + 10.0)
+        moved = (await scope.capture()).pixels
+    # Phase correlation (scikit-image, reference library): +20 um in x, +10 um in y at the
+    # profile's 0.375 um per pixel.
+    shift, _, _ = phase_cross_correlation(first, moved, upsample_factor=100)
+    # Sub-pixel stage positions are cut by bicubic interpolation; phase correlation leans
+    # towards whole pixels on interpolated frames (pixel locking), hence 0.2 px.
+    assert shift == pytest.approx((10.0 / 0.375, 20.0 / 0.375), abs=0.2)

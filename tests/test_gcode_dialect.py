@@ -1,5 +1,6 @@
-"""The RepRap-style G-code dialect object alone: what it writes, how it reads replies and
-position reports, how it parses commands, and the planner's kinematics."""
+"""The G-code dialect objects alone (RepRap family and grbl): what they write, how they read
+replies and position reports, how a board parses commands, how the two are told apart,
+and the planner's kinematics."""
 
 from __future__ import annotations
 
@@ -12,12 +13,15 @@ from hypothesis import strategies as st
 
 from drivers.base import Position
 from drivers.gcode import dialect as dialect_module
+from drivers.gcode import grbl as grbl_module
+from drivers.gcode.detect import make_dialect, tell_apart
 from drivers.gcode.dialect import (
     REPRAP,
     Command,
     CommandSyntaxError,
     Dialect,
     ReplyKind,
+    RepRapDialect,
     feed_to_um_s,
     format_feed,
     format_mm,
@@ -26,6 +30,7 @@ from drivers.gcode.dialect import (
     trapezoid_duration_s,
     trapezoid_travel_um,
 )
+from drivers.gcode.grbl import GrblDialect
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -173,7 +178,7 @@ def test_the_boards_replies_read_back_as_their_kinds():
 
 @pytest.mark.parametrize(
     ("line", "word"),
-    [("G1 X1", "G1"), ("g01 x1", "G1"), ("M0114", "M114"), ("  M400", "M400"), ("N7 G1 X1", ""), ("", ""), ("T0", "")],
+    [("G1 X1", "G1"), ("g01 x1", "G1"), ("M0114", "M114"), ("  M400", "M400"), ("N7 G1 X1*12", "G1"), ("N7 X1", ""), ("", ""), ("T0", "")],
 )
 def test_command_word(line, word):
     assert REPRAP.command_word(line) == word
@@ -327,3 +332,176 @@ def test_path_limit_keeps_every_axis_within_its_own():
     assert path_limit((0.0, 0.0, -200.0), limits) == pytest.approx(1000.0)
     assert path_limit((1000.0, 0.0, 1000.0), limits) == pytest.approx(1000.0 * math.sqrt(2.0))
     assert path_limit((0.0, 0.0, 0.0), limits) == math.inf
+
+
+# ------------------------------------------------ RepRap family: what real boards add
+# From memory (not looked up): RepRap-family firmware numbers lines with an XOR checksum,
+# asks for a damaged one again, keeps the host waiting with busy lines and appends counts
+# to its position report.
+
+
+@pytest.mark.parametrize(
+    ("line", "kind", "detail"),
+    [
+        ("Resend: 42", ReplyKind.RESEND, "42"),
+        ("rs N42", ReplyKind.RESEND, "42"),
+        ("Error:checksum mismatch, Last Line: 41", ReplyKind.RESEND, ""),
+        ("Error:Line Number is not Last Line Number+1, Last Line: 7", ReplyKind.RESEND, ""),
+        ("echo:busy: processing", ReplyKind.BUSY, ""),
+        ("busy: paused for user", ReplyKind.BUSY, ""),
+        ('echo:Unknown command: "G1X"', ReplyKind.ERROR, 'Unknown command: "G1X"'),
+        ("ok N12 P15 B3", ReplyKind.OK, ""),
+        ("ok T:21.0 /0.0 B:20.9 /0.0", ReplyKind.OK, ""),
+    ],
+)
+def test_what_real_reprap_boards_reply(line, kind, detail):
+    reply = REPRAP.classify(line)
+    assert (reply.kind, reply.detail) == (kind, detail)
+
+
+def test_numbered_lines_are_read_back_and_checked():
+    framed = REPRAP.frame("G1 X1.0000 F480.0", 12)
+    good = REPRAP.read_numbered(framed)
+    assert (good.body, good.number, good.checksum_ok) == ("G1 X1.0000 F480.0", 12, True)
+    damaged = REPRAP.read_numbered(framed.replace("X1", "X7"))
+    assert (damaged.number, damaged.checksum_ok, damaged.problem) == (12, False, "checksum mismatch")
+    assert REPRAP.read_numbered("N3 G28").problem == "No Checksum with line number"
+    assert REPRAP.read_numbered("G28*5").problem == "No Line Number with checksum"
+    plain = REPRAP.read_numbered("M114")
+    assert (plain.body, plain.number, plain.checksum_ok) == ("M114", None, True)
+    assert REPRAP.renumber(0) == "M110 N0"
+    assert REPRAP.is_emergency_stop(REPRAP.frame("M112", 9))
+
+
+def test_which_refusals_mean_a_damaged_line():
+    for text in ("Error:cannot read 'G1 X1?'", 'echo:Unknown command: "G\x01"', "Error:'X' given twice in 'G1 X1 X2'"):
+        assert REPRAP.damaged_in_transit(REPRAP.classify(text)), text
+    for text in ("Error:X200.0000 lies outside the travel of the mechanics; not moved", "!! halted", "ok"):
+        assert not REPRAP.damaged_in_transit(REPRAP.classify(text)), text
+
+
+def test_report_with_extra_fields_reads_back():
+    line = REPRAP.report_line(12345.0, 2000.0, 1500.0, extra="E:0.00 Count X:988 Y:160 Z:600")
+    assert line == "X:12.345 Y:2.000 Z:1.500 E:0.00 Count X:988 Y:160 Z:600"
+    assert REPRAP.parse_report(line) == Position(12345.0, 2000.0, 1500.0)
+
+
+# ----------------------------------------------------------------------- grbl
+# grbl 1.1's replies and status reports, from memory (not looked up).
+
+
+def test_grbl_is_a_dialect_documented_in_its_module():
+    d = GrblDialect()
+    assert isinstance(d, Dialect)
+    assert (REPO / d.described_in).resolve() == Path(grbl_module.__file__).resolve()
+    assert d.parse_report(d.report_example) == Position(12500.0, 3000.0, 1500.0)
+    assert (d.home_command, d.finish_command, d.sync_command, d.describe_command) == ("$H", "G4 P0", "$G", "$I")
+    assert d.report_request() == b"?" and d.report_ends_answer
+    assert d.halt_bytes == b"!\x18" and d.restart_bytes == b"\x18"
+    assert not d.numbered and d.after_home_commands == ("G92.1",)
+
+
+@pytest.mark.parametrize(
+    ("line", "kind", "detail"),
+    [
+        ("ok", ReplyKind.OK, ""),
+        ("error:20", ReplyKind.ERROR, "error 20: unsupported or invalid G-code command"),
+        ("error:9", ReplyKind.ALARM, "alarm lock (error 9: G-code locked out during alarm or jog state)"),
+        ("error:99", ReplyKind.ERROR, "error 99: unknown error"),
+        ("ALARM:3", ReplyKind.ALARM, "alarm 3: reset while in motion; position lost"),
+        ("Grbl 1.1h ['$' for help]", ReplyKind.BANNER, ""),
+        ("Grbl 0.9j ['$' for help]", ReplyKind.BANNER, ""),
+        ("[MSG:'$H'|'$X' to unlock]", ReplyKind.INFO, ""),
+        ("[VER:1.1h.20190825:]", ReplyKind.INFO, ""),
+        ("$110=500.000", ReplyKind.INFO, ""),
+        ("[GC:G0 G54 G17 G21 G90 G94 M5 M9 T0 F0 S0]", ReplyKind.STATE, ""),
+        ("<Idle|MPos:1.000,2.000,3.000|FS:0,0>", ReplyKind.REPORT, ""),
+        ("<Hold:0|MPos:1.000,2.000,3.000|FS:0,0|WCO:0.000,0.000,0.000>", ReplyKind.REPORT, ""),
+        ("<Idle|FS:0,0>", ReplyKind.OTHER, ""),
+        ("okay", ReplyKind.OTHER, ""),
+        ("start", ReplyKind.OTHER, ""),
+    ],
+)
+def test_grbl_reply_classification(line, kind, detail):
+    reply = GrblDialect().classify(line)
+    assert (reply.kind, reply.detail) == (kind, detail)
+
+
+def test_grbl_work_position_is_machine_position_less_the_remembered_offset():
+    d = GrblDialect()
+    assert d.parse_report("<Idle|MPos:5.000,2.000,1.000|FS:0,0>") == Position(5000.0, 2000.0, 1000.0)
+    assert d.parse_report("<Idle|MPos:5.000,2.000,1.000|FS:0,0|WCO:5.000,2.000,0.000>") == Position(0.0, 0.0, 1000.0)
+    # No offset in this report: the last one seen still holds.
+    assert d.parse_report("<Run|MPos:6.000,2.000,1.000|FS:480,0>") == Position(1000.0, 0.0, 1000.0)
+    # A work-position report ($10=0) is taken as it is; with extra axes, the first three count.
+    assert d.parse_report("<Idle|WPos:1.500,0.000,0.250|FS:0,0>") == Position(1500.0, 0.0, 250.0)
+    assert d.parse_report("<Idle|MPos:1.000,2.000,3.000,4.000|FS:0,0|WCO:0.000,0.000,0.000,0.000>") == Position(1000.0, 2000.0, 3000.0)
+    d.forget_offsets()
+    assert d.parse_report("<Idle|MPos:5.000,2.000,1.000|FS:0,0>") == Position(5000.0, 2000.0, 1000.0)
+    assert d.parse_report("X:1.000 Y:2.000 Z:3.000") is None
+    assert d.report_halt("<Alarm|MPos:0.000,0.000,0.000|FS:0,0>") == "in alarm (locked until homed)"
+    assert d.report_halt("<Idle|MPos:0.000,0.000,0.000|FS:0,0>") is None
+
+
+def test_grbl_board_side_status_line_reads_back():
+    line = grbl_module.status_line("Run", (12345.0, 0.0, 1500.0), wco_um=(1000.0, 0.0, 0.0), feed_mm_min=480.0)
+    assert line == "<Run|MPos:12.345,0.000,1.500|FS:480,0|WCO:1.000,0.000,0.000>"
+    assert GrblDialect().parse_report(line) == Position(11345.0, 0.0, 1500.0)
+
+
+def test_grbl_writing():
+    d = GrblDialect()
+    assert d.move(x_um=20000.0, y_um=None, z_um=1500.5, feed_um_s=8000.0) == "G1 X20.0000 Z1.5005 F480.0"
+    assert d.set_position(1000.0, 0.0, 250.0) == "G92 X1.0000 Y0.0000 Z0.2500"
+    assert [d.lamp(0, level) for level in (1.0, 0.5, 0.0004, 0.0)] == ["M3 S1000", "M3 S500", "M5", "M5"]
+    assert (d.lamp(1, 0.2), d.lamp(1, 0.0), d.lamp(2, 1.0)) == ("M8", "M9", "M7")
+    with pytest.raises(ValueError, match="lamp outputs 0"):
+        d.lamp(4, 1.0)
+    assert d.frame("G1 X1", 3) == "G1 X1"
+
+
+def test_grbl_lines_that_move_or_wait():
+    d = GrblDialect()
+    # Real-time bytes are refused too: they act outside the one-line-at-a-time protocol.
+    for line in ("G1 X1 F60", "G0Z1", "$H", "$J=G91 X1 F100", "!", "~", "?", "G4 P0 (wait)"):
+        assert d.could_move(line), line
+    for line in ("$I", "$G", "M3 S100", "$X", "M5 ; G1 in a comment", "M5 (G1 in a remark)"):
+        assert not d.could_move(line), line
+    assert [line for line in ("G1 X1", "G4 P0", "$H", "G92.1", "G90", "M5") if d.affects_position(line)] == [
+        "G1 X1", "G4 P0", "$H", "G92.1"
+    ]
+    assert [line for line in ("G1 X1", "G4 P0", "$H", "$I") if d.waits_for_motion(line)] == ["G4 P0", "$H"]
+    damaged = d.classify("error:2")
+    assert d.damaged_in_transit(damaged) and not d.damaged_in_transit(d.classify("error:5"))
+
+
+# ---------------------------------------------------------------- telling them apart
+
+
+@pytest.mark.parametrize(
+    ("line", "family"),
+    [
+        ("error:20", "grbl"),
+        ("Grbl 1.1h ['$' for help]", "grbl"),
+        ("ALARM:1", "grbl"),
+        ("[MSG:'$H'|'$X' to unlock]", "grbl"),
+        ("<Alarm|MPos:0.000,0.000,0.000|FS:0,0>", "grbl"),
+        ("FIRMWARE_NAME:SomeFirmware 2.1 PROTOCOL_VERSION:1.0", "reprap"),
+        ("ok", "reprap"),
+        ("start", "reprap"),
+        ("Error:unknown command 'M115'", "reprap"),
+        ('echo:Unknown command: "M115"', "reprap"),
+        ("!! emergency stop", "reprap"),
+        ("firmware: phasewatch-sim motion 1.0", None),
+        ("huh?", None),
+    ],
+)
+def test_an_answer_tells_the_families_apart(line, family):
+    assert tell_apart(line) == family
+
+
+def test_dialects_by_name():
+    assert isinstance(make_dialect("reprap"), RepRapDialect) and isinstance(make_dialect("grbl"), GrblDialect)
+    assert make_dialect("grbl") is not make_dialect("grbl")  # one per connection: grbl's keeps an offset
+    with pytest.raises(ValueError, match="one of reprap, grbl"):
+        make_dialect("marlin")

@@ -137,7 +137,7 @@ def usb_edit(old: str, new: str) -> str:
         (
             edit('[stage]\ndriver = "sim"', '[stage]\ndriver = "sim"\nport = "/dev/ttyUSB0"'),
             "stage", "port",
-            ["is an option of the 'gcode' stage driver, not of 'sim'", "the sim driver takes no options of its own"],
+            ["is an option of the 'gcode' stage driver, not of 'sim'", "the sim driver takes dialect beside the common [stage] options"],
         ),
         (
             usb_edit("baud = 115200", "baud = 115200\nbaudrate = 9600"),
@@ -169,6 +169,14 @@ def usb_edit(old: str, new: str) -> str:
         (
             usb_edit("baud = 115200", "baud = 115201"),
             "stage", "baud", ["one of 9600, 19200"],
+        ),
+        (
+            usb_edit('dialect = "auto"', 'dialect = "marlin"'),
+            "stage", "dialect", ["one of 'auto', 'reprap', 'grbl'"],
+        ),
+        (
+            edit('[stage]\ndriver = "sim"', '[stage]\ndriver = "sim"\ndialect = "auto"'),
+            "stage", "dialect", ["one of 'reprap', 'grbl'"],
         ),
         (
             USB + "\n[sim]\nseed = 7\n",
@@ -207,7 +215,7 @@ def test_each_driver_gets_its_own_options(tmp_path: Path) -> None:
 
     usb = load_profile("usb-gcode")
     assert usb.camera.options == OpenCVOptions(device="/dev/video0", reconnect_max_s=30.0)
-    assert usb.stage.options == GcodeOptions(port="/dev/ttyUSB0", baud=115200)
+    assert usb.stage.options == GcodeOptions(port="/dev/ttyUSB0", baud=115200, dialect="auto", line_checksums=True)
     assert usb.sim is None and not usb.is_simulated
     # The simulated stage with a replay camera: a real camera driver over the simulated scope.
     text = edit('[camera]\ndriver = "sim"', '[camera]\ndriver = "replay"\nreplay_dir = "/srv/lr0412"\nreplay_fps = 12.5')

@@ -52,9 +52,18 @@ async def probe(profile: Profile) -> dict[str, object]:
         pos = await scope.position()
         px = frame.pixels
         full_scale = float(2**frame.bit_depth - 1)
+        controller = scope.motion.describe()
+        camera_probe = getattr(scope.camera, "probe", None)
+        offer: dict[str, object] | None = await camera_probe() if camera_probe is not None else None
+        warnings = list(offer.get("warnings", [])) if offer else []  # type: ignore[call-overload]
         return {
+            "controller_found": _controller_found(controller),
+            "camera_offer": offer if offer is not None else (
+                f"nothing to probe: the {profile.camera.driver} camera is not a device"
+            ),
+            "warnings": warnings,
             "camera": scope.camera.describe(),
-            "controller": scope.motion.describe(),
+            "controller": controller,
             "position_um": {"x": pos.x_um, "y": pos.y_um, "z": pos.z_um},
             "test_frame": {
                 "shape": list(px.shape),
@@ -62,6 +71,19 @@ async def probe(profile: Profile) -> dict[str, object]:
                 "saturated_fraction": round(float(np.mean(px >= full_scale)), 6),
             },
         }
+
+
+def _controller_found(controller: dict[str, object]) -> dict[str, object]:
+    """Which dialect and firmware the controller answered with; a driver without dialects says so."""
+    if "dialect" not in controller:
+        return {"dialect": None, "firmware": controller.get("firmware")}
+    return {
+        "dialect": controller["dialect"],
+        "dialect_name": controller.get("dialect_name"),
+        "how": controller.get("dialect_found"),
+        "firmware": controller.get("firmware"),
+        "line_checksums": controller.get("line_checksums"),
+    }
 
 
 async def run(args: argparse.Namespace) -> int:
@@ -78,7 +100,12 @@ async def run(args: argparse.Namespace) -> int:
             continue
         print(f"  {key}: {value}")
     if args.probe:
+        found = report["probe"]
         print("  probe:")
-        for key, value in report["probe"].items():  # type: ignore[union-attr]
+        for key, value in found.items():  # type: ignore[union-attr]
+            if key == "warnings":
+                continue
             print(f"    {key}: {value}")
+        for warning in found["warnings"]:  # type: ignore[index]
+            print(f"  warning: {warning}")
     return 0

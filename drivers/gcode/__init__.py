@@ -11,6 +11,7 @@ import dataclasses
 
 from drivers.clock import WallClock
 from drivers.gcode.controller import GcodeController
+from drivers.gcode.detect import DIALECT_CHOICES
 from drivers.options import option
 from drivers.registry import StageBuild, StageContext, StageDriver
 from drivers.sections import driver_options
@@ -25,6 +26,15 @@ BAUD_RATES = (9600, 19200, 38400, 57600, 115200, 250000, 500000, 1000000)
 class GcodeOptions:
     port: str = option("", doc="serial port of the G-code controller, e.g. /dev/ttyUSB0")
     baud: int = option(115200, doc="serial speed", choices=BAUD_RATES)
+    dialect: str = option(
+        "auto",
+        doc="the board's G-code dialect: reprap (RepRap family), grbl, or auto (found by asking the board at connect)",
+        choices=DIALECT_CHOICES,
+    )
+    line_checksums: bool = option(
+        True,
+        doc="send lines numbered and checksummed where the dialect has it (reprap), so a damaged line is resent, not run",
+    )
 
     def __post_init__(self) -> None:
         if not self.port:
@@ -44,13 +54,15 @@ def open_stage(ctx: StageContext) -> StageBuild:
         illumination=profile.illumination,
         clock=clock,
         profile_path=profile.path,
+        dialect=opts.dialect,
+        line_checksums=opts.line_checksums,
     )
     return StageBuild(motion=motion, clock=clock, truth=NoTruth(), stop=lambda: None)
 
 
 DRIVER = StageDriver(
     name="gcode",
-    summary="G-code controller board (RepRap-style dialect) on a USB or UART serial port",
+    summary="G-code controller board (RepRap family or grbl) on a USB or UART serial port",
     options=GcodeOptions,
     open=open_stage,
 )

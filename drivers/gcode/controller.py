@@ -1,8 +1,9 @@
 """G-code motion controllers on a serial port (pyserial), as a :class:`MotionController`.
 
-The board speaks a dialect (:mod:`drivers.gcode.dialect`, the RepRap-style one by
-default); the line protocol and the serial link are :mod:`drivers.gcode.protocol` and
-:mod:`drivers.gcode.link`. This module holds the motion rules:
+The board speaks a dialect (the RepRap family's, :mod:`drivers.gcode.dialect`, or grbl's,
+:mod:`drivers.gcode.grbl`), named in the profile or found at connect; the line protocol
+and the serial link are :mod:`drivers.gcode.protocol` and :mod:`drivers.gcode.link`. The
+motion rules below are the same in every dialect:
 
 * **Position known only after homing.** After connecting, after a reset (the banner), a
   lost link, an emergency stop, or a motion command whose reply went wrong, the position
@@ -12,15 +13,17 @@ default); the line protocol and the serial link are :mod:`drivers.gcode.protocol
   reports a position that means nothing, so the driver never trusts it
   (``[stage] home_on_connect`` homes at once).
 * **Soft limits first.** Every target and every intermediate point is checked against the
-  profile's limits (:mod:`drivers.limits`) before the first byte of a move is sent.
+  profile's limits (:mod:`drivers.limits`) before the first byte of a move is sent, in
+  every dialect.
 * **Backlash.** Every focus move ends with an approach from below: a lower target is
   reached via ``target - (backlash_um + margin)`` (clamped at ``z_min_um``), then up.
 * **Waiting for motion.** A move is complete when the dialect's finish command is
   answered; then the stage or focus settles (``settle_ms`` on the scope's clock) and the
   position report confirms where it went. A move that does not complete within
-  ``[stage] move_timeout_s`` (on the scope's clock) is stopped with the halt command (a
-  jammed stage must not keep pushing); the controller is then halted and
-  :meth:`GcodeController.home` restarts it.
+  ``[stage] move_timeout_s`` (on the scope's clock) is stopped with the dialect's halt
+  sequence (a jammed stage must not keep pushing); the controller is then halted and
+  :meth:`GcodeController.home` restarts it. An alarm (grbl) is handled the same way: the
+  position is lost, and homing resets the board and homes it.
 """
 
 from __future__ import annotations
@@ -32,7 +35,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from drivers.base import MotionError, Position, PositionUnknownError
-from drivers.gcode.dialect import REPRAP, Dialect, path_limit
+from drivers.gcode.dialect import Dialect, path_limit
 from drivers.gcode.link import Backoff
 from drivers.gcode.protocol import LineProtocol, NoReply
 from drivers.limits import SoftLimits, plan_focus_approach
@@ -72,13 +75,13 @@ class GcodeController:
         reconnect_attempts: int = 5,
         reconnect_first_delay_s: float = 0.2,
         reconnect_max_delay_s: float = 5.0,
-        dialect: Dialect = REPRAP,
+        dialect: Dialect | str = "auto",
+        line_checksums: bool = True,
     ) -> None:
         self._stage = stage
         self._focus = focus
         self._illumination = illumination
         self._clock = clock
-        self._dialect = dialect
         self._limits = SoftLimits.from_sections(stage, focus, source=profile_path)  # type: ignore[arg-type]
         self._position: Position | None = None
         self._unknown_reason = "the stage has not been homed since the driver connected"
@@ -92,7 +95,13 @@ class GcodeController:
             forget=self._forget_position,
             boot_wait_s=boot_wait_s,
             backoff=Backoff(reconnect_attempts, reconnect_first_delay_s, reconnect_max_delay_s),
+            line_checksums=line_checksums,
         )
+
+    @property
+    def _dialect(self) -> Dialect:
+        # The protocol's: with dialect "auto" it is only known once connected.
+        return self._line.dialect
 
     # ----------------------------------------------------------------- API
 
@@ -151,7 +160,10 @@ class GcodeController:
             return
         if not 0.0 <= level <= 1.0:
             raise ValueError(f"lamp level must be 0..1, got {level}")
-        line = self._dialect.lamp(self._illumination.channel, level if on else 0.0)
+        try:
+            line = self._dialect.lamp(self._illumination.channel, level if on else 0.0)
+        except ValueError as exc:
+            raise MotionError(str(exc)) from None
         async with self._lock:
             await self._line.ensure()
             self._line.require_running()
@@ -181,6 +193,11 @@ class GcodeController:
             "port": link.port,
             "baud": link.baud,
             "connected": link.up,
+            "dialect": self._dialect.key,
+            "dialect_name": self._dialect.name,
+            "dialect_found": self._line.dialect_found,
+            "line_checksums": self._line.numbered,
+            "resends": self._line.resends,
             "firmware": self._line.firmware,
             "boot_banner": " / ".join(self._line.boot_lines),
             "position_um": None if where is None else {"x": where.x_um, "y": where.y_um, "z": where.z_um},
@@ -247,12 +264,14 @@ class GcodeController:
 
     async def _wait_for_motion(self) -> None:
         try:
-            await self._line.exchange(self._dialect.finish_command, timeout_s=self._move_allowance_s())
+            await self._line.exchange(
+                self._dialect.finish_command, timeout_s=self._move_allowance_s(), resend_damaged=True
+            )
         except NoReply:
             await self._line.emergency_stop()
             raise MotionError(
                 f"a move did not finish within move_timeout_s = {self._stage.move_timeout_s:g} s; stopped it "
-                f"with {self._dialect.halt_command}. The stage or focus may be jammed: check the mechanics, then home"
+                f"with {self._dialect.halt_name}. The stage or focus may be jammed: check the mechanics, then home"
             ) from None
 
     async def _settle(self, start: Position, end: Position) -> None:
@@ -267,13 +286,17 @@ class GcodeController:
         await self._line.ensure()
         await self._line.restart()
         try:
-            await self._line.exchange(self._dialect.home_command, timeout_s=self._move_allowance_s())
+            await self._line.exchange(
+                self._dialect.home_command, timeout_s=self._move_allowance_s(), resend_damaged=True
+            )
         except NoReply:
             await self._line.emergency_stop()
             raise MotionError(
                 f"homing did not finish within move_timeout_s = {self._stage.move_timeout_s:g} s; stopped it "
-                f"with {self._dialect.halt_command}. Check the home switches and the mechanics, then home again"
+                f"with {self._dialect.halt_name}. Check the home switches and the mechanics, then home again"
             ) from None
+        for line in self._dialect.after_home_commands:
+            await self._line.send(line)
         await self._line.ensure_absolute()
         self._position = await self._line.report()
         await self._clock.sleep(max(self._stage.settle_ms, self._focus.settle_ms) / 1000.0)

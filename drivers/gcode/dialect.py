@@ -1,11 +1,13 @@
-"""The G-code dialect the controller board speaks, and its planner's kinematics.
+"""The G-code dialects a controller board may speak, and its planner's kinematics.
 
-This module is the one description of the wire format: the driver
-(:mod:`drivers.gcode.controller`) writes and reads it through a :class:`Dialect`
-object, and the simulated board (:mod:`drivers.sim.controller`) answers in it.
+This module describes the wire formats: the driver (:mod:`drivers.gcode.controller`)
+writes and reads them through a :class:`Dialect` object, and the simulated board
+(:mod:`drivers.sim.controller`) answers in them. Two dialects exist: the RepRap-family
+one below (:data:`REPRAP`) and grbl's (:mod:`drivers.gcode.grbl`); which one a board
+speaks is found at connect (:mod:`drivers.gcode.detect`) unless ``[stage] dialect`` says.
 
-The RepRap-style dialect (:data:`REPRAP`)
------------------------------------------
+The RepRap-family dialect (:data:`REPRAP`)
+------------------------------------------
 Plain ASCII, one command per line ending in ``\\n``; millimetres and mm/min on the wire
 (the driver works in micrometres and converts, see :func:`format_mm`). A line is a
 command word (a letter G or M and a number, leading zeros allowed: ``G01`` is ``G1``)
@@ -18,7 +20,7 @@ upper case. Text after ``;`` is a comment; comment-only and empty lines get no a
                            named axes only. ``ok`` once the move is queued in the board's
                            planner (when the planner is full, ``ok`` waits for room)
 ``G28 [X] [Y] [Z]``        home the named axes (all when none are named); ``ok`` when
-                           homing has finished
+                           homing has finished; offsets declared with G92 are cleared
 ``G92 X Y Z``              declare the current position of the named axes (no motion)
 ``M114``                   the position report ``X:12.500 Y:3.000 Z:1.500`` then ``ok``:
                            where the motors are commanded to be (the end of the last
@@ -27,23 +29,40 @@ upper case. Text after ``;`` is a comment; comment-only and empty lines get no a
 ``M400``                   ``ok`` once every queued move has finished
 ``M106 P<ch> S<0-255>``    PWM output ``ch`` (default 0) to duty S (default 255); the lamp
 ``M107 P<ch>``             PWM output ``ch`` off
+``M110 N<n>``              the number of the last line: the next numbered line is n + 1
 ``M115``                   one or more lines describing the firmware, then ``ok``
                            (optional: a board that refuses it is still usable)
 ``M112``                   emergency stop, acted on as soon as it arrives (even while an
-                           ``M400`` or ``G28`` waits): motion is aborted where it is
-``M999``                   restart after a halt
+                           ``M400`` or ``G28`` waits): motion is aborted where it is and
+                           the board is halted
+``M999``                   restart after a halt: the board reboots (its banner follows,
+                           the position is lost)
 =========================  ==============================================================
+
+**Numbered lines.** A line may be sent as ``N<n> <command>*<checksum>``: ``n`` one more
+than the last line's number, the checksum the XOR of every byte before the ``*``
+(:func:`line_checksum`). A numbered line that arrives damaged (checksum wrong, number
+out of sequence, no checksum) is not run: the board answers
+``Error:<why>, Last Line: <k>``, ``Resend: <k+1>`` and ``ok``, and the driver sends
+that line again. The driver numbers its lines by default, so a noisy cable costs a
+resend instead of a wrong move; lines without a number are accepted unchecked.
 
 Replies (:meth:`RepRapDialect.classify`):
 
-* ``ok`` (or ``ok`` followed by text) ends the answer to an accepted line;
-* ``Error:<text>`` is the whole answer to a refused line: it had no effect, no ``ok``;
+* ``ok``, possibly followed by text (``ok N12 P15 B3``: line, planner and buffer room),
+  ends the answer to an accepted line;
+* ``Error:<text>`` refuses a line (it had no effect); some boards follow it with ``ok``,
+  so after a refusal the driver re-synchronises. ``echo:Unknown command: "..."`` is a
+  refusal too;
+* ``Resend: <n>`` asks for line ``n`` again (after a damaged numbered line);
+* ``echo:busy: processing`` (or ``busy: ...``): the board is alive, still working on a
+  long command (homing, waiting for motion); sent every couple of seconds;
 * ``!! <reason>``: the board is halted (after ``M112``); it answers so to every line
   but ``M999``;
 * ``start`` is the banner printed on boot and after a reset (the position is lost);
 * ``echo:<text>`` and ``//<text>`` are informational lines, at any time;
 * the position report: ``X:<mm> Y:<mm> Z:<mm>``, three or more decimals, possibly with
-  more fields after it (some firmware appends extruder and step counts).
+  more fields after it (extruder, step counts: ``E:0.00 Count X:800 Y:400 Z:400``).
 
 The driver relies on: one line in flight at a time, every line answered; ``M400``
 answered only once motion has stopped; ``M112`` acted on at once; a position report
@@ -54,10 +73,6 @@ The planner's kinematics
 Firmware planners drive each move from rest to rest along a trapezoidal speed profile
 (:func:`trapezoid_duration_s`, :func:`trapezoid_travel_um`), with the path speed and
 acceleration limited so that no axis exceeds its own (:func:`path_limit`).
-
-Another dialect (say one with ``?`` status reports, ``error:N``/``ALARM:N`` replies, ``$H``
-homing and ``$X`` unlock) is another implementation of :class:`Dialect`; the driver's
-motion rules only use that interface.
 """
 
 from __future__ import annotations
@@ -145,10 +160,14 @@ def path_limit(delta_um: Sequence[float], axis_limits: Sequence[float]) -> float
 class ReplyKind(StrEnum):
     OK = "ok"            # the line was accepted; its answer is complete
     ERROR = "error"      # the line was refused and had no effect
-    HALT = "halt"        # the board is halted and accepts only the restart command
+    RESEND = "resend"    # the line arrived damaged: send line number ``detail`` again
+    BUSY = "busy"        # keep-alive: still working on a long command
+    HALT = "halt"        # the board is halted and needs the restart sequence
+    ALARM = "alarm"      # the board stopped on an alarm: its position is lost until homed
     BANNER = "banner"    # the board has (re)started and lost its position
     INFO = "info"        # informational, ignorable at any time
     REPORT = "report"    # a position report
+    STATE = "state"      # the answer to the sync command (grbl's modal state)
     OTHER = "other"      # not part of the dialect
 
 
@@ -156,26 +175,49 @@ class ReplyKind(StrEnum):
 class Reply:
     kind: ReplyKind
     text: str
-    detail: str = ""  # the refusal's text (ERROR) or the halt's reason (HALT)
+    detail: str = ""  # the refusal's text (ERROR), the halt's or alarm's reason, the line to resend
 
 
 @runtime_checkable
 class Dialect(Protocol):
     """What the driver needs to know of a controller's language; see the module docstring.
 
-    Positions are micrometres and speeds um/s on this side; the dialect converts.
+    Positions are micrometres and speeds um/s on this side; the dialect converts. A
+    dialect object may keep what its reports leave implicit (grbl's work offset), so
+    each connection has its own (:func:`drivers.gcode.detect.make_dialect`).
     """
 
+    key: str                   # the name in ``[stage] dialect``
     name: str                  # for messages: "the <name> dialect described in <described_in>"
     described_in: str          # repository path of the module documenting it
     report_example: str        # a well-formed position report, for messages
-    probe_command: str         # asks for the position report; the first line on a new link
+    sync_command: str          # answered by a STATE or REPORT line, then ok: re-synchronises
     describe_command: str      # asks the firmware to describe itself (may be refused)
     absolute_command: str      # absolute coordinates for the following moves
     home_command: str          # home all axes; answered when homing has finished
+    after_home_commands: tuple[str, ...]  # sent after homing: clear leftover coordinate offsets
     finish_command: str        # answered once every queued move has finished
-    halt_command: str          # emergency stop, acted on at once
-    restart_command: str       # leave the halted state
+    halt_bytes: bytes          # emergency stop, acted on at once
+    halt_name: str             # the emergency stop, for messages
+    restart_bytes: bytes       # leave the halted state: answered by ok or the banner
+    numbered: bool             # whether lines can carry numbers and checksums
+
+    def report_request(self) -> bytes:
+        """The bytes that ask for a position report (a line, or a real-time byte)."""
+        ...
+
+    @property
+    def report_ends_answer(self) -> bool:
+        """Whether the report is the whole answer (no ok follows it)."""
+        ...
+
+    def frame(self, line: str, number: int) -> str:
+        """``line`` as numbered line ``number`` with its checksum (numbered dialects)."""
+        ...
+
+    def renumber(self, last: int) -> str:
+        """The line that makes ``last`` the number of the last line (numbered dialects)."""
+        ...
 
     def move(self, *, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
         """A straight move of the given axes (None: not named) at the path speed ``feed_um_s``."""
@@ -195,6 +237,14 @@ class Dialect(Protocol):
         """The position in a report line, or None when the line is not a (readable) report."""
         ...
 
+    def report_halt(self, line: str) -> str | None:
+        """Why the board is halted, when its report says so (grbl's Alarm state); else None."""
+        ...
+
+    def damaged_in_transit(self, reply: Reply) -> bool:
+        """Whether a refusal of a well-formed line means it arrived damaged (safe to resend)."""
+        ...
+
     def affects_position(self, line: str) -> bool:
         """Whether, if this line's answer goes wrong, where the stage is becomes unknown."""
         ...
@@ -206,6 +256,29 @@ class Dialect(Protocol):
     def could_move(self, line: str) -> bool:
         """Whether a line typed by a person might move an axis (refused outside the motion rules)."""
         ...
+
+    def is_banner(self, line: str) -> bool:
+        """Whether ``line`` is this dialect's start-up banner (used to tell dialects apart)."""
+        ...
+
+
+def linear_move(*, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
+    """``G1`` naming the given axes, in millimetres, at the feed rate: the same in every dialect."""
+    words = [f"{axis}{format_mm(value)}" for axis, value in zip("XYZ", (x_um, y_um, z_um)) if value is not None]
+    return f"G1 {' '.join(words)} F{format_feed(feed_um_s)}"
+
+
+def declare_position(x_um: float, y_um: float, z_um: float) -> str:
+    """``G92`` with all three axes: the same in every dialect."""
+    return f"G92 X{format_mm(x_um)} Y{format_mm(y_um)} Z{format_mm(z_um)}"
+
+
+def line_checksum(text: str) -> int:
+    """The RepRap line checksum: XOR of the bytes of ``text`` (everything before ``*``)."""
+    value = 0
+    for byte in text.encode("ascii", errors="replace"):
+        value ^= byte
+    return value
 
 
 # ---------------------------------------------------------------- commands
@@ -221,32 +294,59 @@ class Command:
     params: dict[str, float | None]    # parameter letter -> number (None: letter alone)
 
 
+@dataclasses.dataclass(frozen=True, slots=True)
+class NumberedLine:
+    """What a board reads off a line that may carry ``N<n>`` and ``*<checksum>``."""
+
+    body: str              # the command, without number and checksum
+    number: int | None     # None: the line had no number
+    checksum_ok: bool      # False: wrong or missing checksum on a numbered line (or a stray one)
+    problem: str = ""      # why the line cannot be taken, for the Error: reply
+
+
 _WORD = re.compile(r"\s*([A-Z])([-+]?(?:\d+(?:\.\d*)?|\.\d+))?")
-_COMMAND_WORD = re.compile(r"\s*([GMgm])0*(\d+)")
+_COMMAND_WORD = re.compile(r"\s*(?:[Nn]\d+\s*)?([GMgm])0*(\d+)")
 _REPORT = re.compile(r"X:\s*(-?\d+(?:\.\d+)?)\s+Y:\s*(-?\d+(?:\.\d+)?)\s+Z:\s*(-?\d+(?:\.\d+)?)")
-_EMERGENCY_STOP = re.compile(r"M0*112(\s.*|;.*)?")
+_EMERGENCY_STOP = re.compile(r"(?:N\d+\s*)?M0*112(\s.*|;.*|\*\d+)?")
 _ANY_G_WORD = re.compile(r"[Gg]\s*\d")
+_RESEND = re.compile(r"(?:Resend|rs)\s*:?\s*N?(\d+)", re.IGNORECASE)
+_NUMBERED = re.compile(r"\s*N(\d+)\s*(.*?)\s*(?:\*(\d*))?\s*$", re.IGNORECASE | re.DOTALL)
+_LAST_LINE = re.compile(r"Last Line\s*:?\s*\d+", re.IGNORECASE)
+_UNKNOWN = re.compile(r"echo:\s*unknown command", re.IGNORECASE)
+_BUSY = re.compile(r"(?:echo:)?\s*busy:", re.IGNORECASE)
+# Refusals of a well-formed line that only damage on the way can explain.
+_DAMAGE_WORDS = ("cannot read", "unknown command", "given twice", "does not take", "needs a number")
 
 
 class RepRapDialect:
-    """The RepRap-style dialect of the module docstring.
+    """The RepRap-family dialect of the module docstring.
 
-    The driver uses the :class:`Dialect` part; the rest (:meth:`parse_command` and the
-    reply builders) is the board's side, used by the simulated board.
+    The driver uses the :class:`Dialect` part; the rest (:meth:`parse_command`,
+    :meth:`read_numbered` and the reply builders) is the board's side, used by the
+    simulated board.
     """
 
+    key = "reprap"
     name = "RepRap-style G-code"
     described_in = "drivers/gcode/dialect.py"
     probe_command = "M114"
+    sync_command = "M114"
     describe_command = "M115"
     absolute_command = "G90"
     relative_command = "G91"
     home_command = "G28"
+    after_home_commands: tuple[str, ...] = ()
     finish_command = "M400"
     halt_command = "M112"
+    halt_bytes = b"M112\n"
+    halt_name = "M112"
     restart_command = "M999"
+    restart_bytes = b"M999\n"
+    renumber_command = "M110"
+    numbered = True
     banner = "start"
     ok = "ok"
+    busy_line = "echo:busy: processing"
     _AFFECTS_POSITION = frozenset({"G0", "G1", "G28", "G92", "M400"})
     _WAITS_FOR_MOTION = frozenset({"G28", "M400"})
 
@@ -256,12 +356,25 @@ class RepRapDialect:
 
     # ---------------------------------------------------------- writing
 
+    def report_request(self) -> bytes:
+        return f"{self.probe_command}\n".encode("ascii")
+
+    @property
+    def report_ends_answer(self) -> bool:
+        return False
+
+    def frame(self, line: str, number: int) -> str:
+        head = f"N{number} {line}"
+        return f"{head}*{line_checksum(head)}"
+
+    def renumber(self, last: int) -> str:
+        return f"{self.renumber_command} N{last}"
+
     def move(self, *, x_um: float | None, y_um: float | None, z_um: float | None, feed_um_s: float) -> str:
-        words = [f"{axis}{format_mm(value)}" for axis, value in zip("XYZ", (x_um, y_um, z_um)) if value is not None]
-        return f"G1 {' '.join(words)} F{format_feed(feed_um_s)}"
+        return linear_move(x_um=x_um, y_um=y_um, z_um=z_um, feed_um_s=feed_um_s)
 
     def set_position(self, x_um: float, y_um: float, z_um: float) -> str:
-        return f"G92 X{format_mm(x_um)} Y{format_mm(y_um)} Z{format_mm(z_um)}"
+        return declare_position(x_um, y_um, z_um)
 
     def lamp(self, channel: int, level: float) -> str:
         duty = round(level * 255)
@@ -273,8 +386,18 @@ class RepRapDialect:
         text = line.strip()
         if text == "ok" or text.startswith("ok "):
             return Reply(ReplyKind.OK, text)
+        if text.startswith("Error:") and _LAST_LINE.search(text):
+            # A damaged numbered line: the Resend request that follows says which to send.
+            return Reply(ReplyKind.RESEND, text)
         if text.startswith("Error:"):
             return Reply(ReplyKind.ERROR, text, text[len("Error:"):].strip())
+        if _UNKNOWN.match(text):
+            return Reply(ReplyKind.ERROR, text, text.split(":", 1)[1].strip())
+        resend = _RESEND.fullmatch(text)
+        if resend:
+            return Reply(ReplyKind.RESEND, text, resend.group(1))
+        if _BUSY.match(text):
+            return Reply(ReplyKind.BUSY, text)
         if text.startswith("!!"):
             return Reply(ReplyKind.HALT, text, text[2:].strip() or "halted")
         if text == self.banner:
@@ -292,9 +415,19 @@ class RepRapDialect:
         x, y, z = (mm_to_um(float(v)) for v in m.groups())
         return Position(x, y, z)
 
+    def report_halt(self, line: str) -> str | None:
+        return None
+
+    def damaged_in_transit(self, reply: Reply) -> bool:
+        detail = reply.detail.lower()
+        return reply.kind is ReplyKind.ERROR and any(word in detail for word in _DAMAGE_WORDS)
+
+    def is_banner(self, line: str) -> bool:
+        return line.strip() == self.banner
+
     @staticmethod
     def command_word(line: str) -> str:
-        """``"G1"`` for ``"g01 x1"``; ``""`` when the line does not start with a G or M word."""
+        """``"G1"`` for ``"g01 x1"`` (or ``"N7 G1 X1*3"``); ``""`` without a G or M word."""
         m = _COMMAND_WORD.match(line)
         return f"{m.group(1).upper()}{m.group(2)}" if m else ""
 
@@ -310,6 +443,23 @@ class RepRapDialect:
         return _ANY_G_WORD.search(line.split(";", 1)[0]) is not None
 
     # ------------------------------------------------------ the board's side
+
+    @staticmethod
+    def read_numbered(line: str) -> NumberedLine:
+        """Split ``N<n> <body>*<checksum>`` and check it; plain lines pass through unchecked."""
+        text = line.strip()
+        m = _NUMBERED.fullmatch(text)
+        if m is None:
+            if "*" in text.split(";", 1)[0]:
+                return NumberedLine(text.split("*", 1)[0].strip(), None, False, "No Line Number with checksum")
+            return NumberedLine(text, None, True)
+        number, body, given = int(m.group(1)), m.group(2), m.group(3)
+        if given is None or given == "":
+            return NumberedLine(body, number, False, "No Checksum with line number")
+        head = text[: text.rindex("*")]
+        if int(given) != line_checksum(head):
+            return NumberedLine(body, number, False, "checksum mismatch")
+        return NumberedLine(body, number, True)
 
     def parse_command(self, line: str) -> Command | None:
         """The command on ``line``; None for an empty or comment-only line.
@@ -348,6 +498,15 @@ class RepRapDialect:
         return f"Error:{text}"
 
     @staticmethod
+    def resend_reply(number: int) -> str:
+        return f"Resend: {number}"
+
+    @staticmethod
+    def numbered_ok(number: int, planner_free: int, buffer_free: int) -> str:
+        """``ok`` with the line number and the room left in planner and input buffer."""
+        return f"ok N{number} P{planner_free} B{buffer_free}"
+
+    @staticmethod
     def halt_reply(reason: str) -> str:
         return f"!! {reason}"
 
@@ -356,10 +515,14 @@ class RepRapDialect:
         return f"echo:{text}"
 
     @staticmethod
-    def report_line(x_um: float, y_um: float, z_um: float) -> str:
-        """The position report, three decimals of a millimetre as common firmware prints."""
+    def report_line(x_um: float, y_um: float, z_um: float, *, extra: str = "") -> str:
+        """The position report, three decimals of a millimetre as common firmware prints.
+
+        ``extra``: fields some firmware appends (extruder, step counts).
+        """
         x, y, z = (v / UM_PER_MM for v in (x_um, y_um, z_um))
-        return f"X:{x:.3f} Y:{y:.3f} Z:{z:.3f}"
+        line = f"X:{x:.3f} Y:{y:.3f} Z:{z:.3f}"
+        return f"{line} {extra}" if extra else line
 
 
 REPRAP = RepRapDialect()

@@ -178,15 +178,19 @@ class SerialLink:
         self.close()
 
     async def write(self, line: str) -> None:
+        await self.write_bytes(f"{line}\n".encode("ascii"), what=line)
+
+    async def write_bytes(self, data: bytes, *, what: str) -> None:
+        """Write ``data`` as it is (a line with its newline, or real-time bytes)."""
         port = self._serial
         if port is None or not self.up:
             raise MotionError(f"not connected to the controller on {self.port}")
         try:
-            await asyncio.to_thread(port.write, f"{line}\n".encode("ascii"))
+            await asyncio.to_thread(port.write, data)
         except (serial.SerialException, OSError) as exc:
             self.lost(str(exc))
             raise MotionError(
-                f"lost the serial link to {self.port} while sending '{line}' ({exc}); the position is "
+                f"lost the serial link to {self.port} while sending '{what}' ({exc}); the position is "
                 "now unknown. Check the USB cable; the port is reopened on the next command"
             ) from None
 

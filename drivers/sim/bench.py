@@ -15,10 +15,10 @@ import dataclasses
 from drivers.base import Position
 from drivers.clock import ScaledClock
 from drivers.gcode import GcodeController
-from drivers.options import ConfigError
+from drivers.options import ConfigError, option
 from drivers.registry import OfflineTruthContext, StageBuild, StageContext, StageDriver
-from drivers.sections import HardwareSections
-from drivers.sim.controller import GcodeEmulator
+from drivers.sections import HardwareSections, driver_options
+from drivers.sim.controller import DIALECTS, GcodeEmulator
 from drivers.sim.truth import SimTruth
 from drivers.sim.world import SimWorld
 
@@ -31,7 +31,12 @@ PARKED_BELOW_FOCUS_UM = 60.0
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class SimStageOptions:
-    """The simulated stage takes its mechanics from [sim.motion]; nothing more in [stage]."""
+    """The simulated stage takes its mechanics from [sim.motion]; [stage] says which language
+    its board speaks (the driver finds out at connect, as with a real board)."""
+
+    dialect: str = option(
+        "reprap", doc="the G-code dialect the simulated board speaks: reprap or grbl", choices=DIALECTS
+    )
 
 
 @dataclasses.dataclass
@@ -67,8 +72,10 @@ def open_stage(ctx: StageContext) -> StageBuild:
     # Power on over well A1, as a plate put in by hand would sit.
     plate, focal = sim.plate, sim.focal_plane  # type: ignore[attr-defined]
     start = Position(plate.a1_x_um, plate.a1_y_um, focal.z0_um - PARKED_BELOW_FOCUS_UM)
+    opts = driver_options(profile.stage, SimStageOptions)
     emulator = GcodeEmulator(
-        clock=clock, stage=profile.stage, focus=profile.focus, motion=sim.motion, start=start  # type: ignore[attr-defined]
+        clock=clock, stage=profile.stage, focus=profile.focus, motion=sim.motion, start=start,  # type: ignore[attr-defined]
+        dialect=opts.dialect,
     )
     port = emulator.start()
     motion = GcodeController(
