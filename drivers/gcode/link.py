@@ -178,9 +178,9 @@ class SerialLink:
         self.close()
 
     async def write(self, line: str) -> None:
-        await self.write_bytes(f"{line}\n".encode("ascii"), what=line)
+        await self.send_bytes(f"{line}\n".encode("ascii"), what=line)
 
-    async def write_bytes(self, data: bytes, *, what: str) -> None:
+    async def send_bytes(self, data: bytes, *, what: str) -> None:
         """Write ``data`` as it is (a line with its newline, or real-time bytes)."""
         port = self._serial
         if port is None or not self.up:

@@ -412,7 +412,7 @@ class LineProtocol:
         """Leave the halted state, if in it: the restart sequence, answered by ok or the banner."""
         if self.halted is None:
             return
-        await self.link.write_bytes(self.dialect.restart_bytes, what="restart")
+        await self.link.send_bytes(self.dialect.restart_bytes, what="restart")
         loop = asyncio.get_running_loop()
         deadline = loop.time() + self._reply_timeout_s
         while (remaining := deadline - loop.time()) > 0:
@@ -448,7 +448,7 @@ class LineProtocol:
         self.halted = f"stopped by the driver with {halt} after a move timed out"
         self.needs_resync = True
         try:
-            await self.link.write_bytes(self.dialect.halt_bytes, what=halt)
+            await self.link.send_bytes(self.dialect.halt_bytes, what=halt)
             loop = asyncio.get_running_loop()
             deadline = loop.time() + self._reply_timeout_s
             while (remaining := deadline - loop.time()) > 0:
@@ -501,7 +501,7 @@ class LineProtocol:
         loop = asyncio.get_running_loop()
         sends = 0
         while True:
-            await self.link.write_bytes(data, what=line)
+            await self.link.send_bytes(data, what=line)
             sends += 1
             started = loop.time()
             deadline = started + timeout_s
