@@ -29,6 +29,7 @@ from typing import IO, Any
 TEMP_SUFFIX = ".partial"
 # Permissions of a new file before the umask, as open() gives them.
 DEFAULT_PERMISSIONS = 0o666
+DEFAULT_FOLDER_PERMISSIONS = 0o777
 
 
 def temp_name(path: Path) -> Path:
@@ -45,15 +46,19 @@ def fsync_folder(folder: Path) -> None:
         os.close(fd)
 
 
-def make_dirs(folder: Path) -> None:
-    """``mkdir -p`` that also syncs each new folder's parent, so new entries survive a cut."""
+def make_dirs(folder: Path, *, mode: int = DEFAULT_FOLDER_PERMISSIONS) -> None:
+    """``mkdir -p`` that also syncs each new folder's parent, so new entries survive a cut.
+
+    ``mode`` applies to the folders this creates (0o700: private from the moment they
+    exist); folders already there keep theirs.
+    """
     missing: list[Path] = []
     p = Path(folder)
     while not p.exists():
         missing.append(p)
         p = p.parent
     for d in reversed(missing):
-        d.mkdir(exist_ok=True)
+        d.mkdir(mode=mode, exist_ok=True)
         fsync_folder(d.parent)
 
 

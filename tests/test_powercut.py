@@ -23,7 +23,7 @@ import ome_types
 import tifffile
 
 from daemon.storage.ome import parse_frame_xml
-from daemon.storage.index import open_index
+from daemon.storage.index import RECORD_FILE, open_index
 from daemon.storage.reconcile import reconcile
 from tests.test_scheduler_cli import write_small_profile
 
@@ -143,7 +143,11 @@ def test_sigkill_at_random_moments_loses_and_corrupts_nothing(tmp_path: Path) ->
     assert all(now.get(p) == v for p, v in seen.items() if p in now)
     identities = [(f["tp"], f["key"], f["z_index"], f["kind"]) for f in frames]
     assert len(identities) == len(set(identities)), "a frame was stored twice"
-    on_disk = {p.relative_to(data).as_posix() for p in (data / "timelapses").rglob("*") if p.is_file()}
+    # Beside the frames lies only the time-lapse's record (what rebuilding a lost index reads).
+    assert (data / tl["folder"] / RECORD_FILE).is_file()
+    on_disk = {
+        p.relative_to(data).as_posix() for p in (data / "timelapses").rglob("*") if p.is_file() and p.name != RECORD_FILE
+    }
     assert on_disk == {f["path"] for f in frames}, "stray or partial files left beside the indexed frames"
 
     for f in frames:

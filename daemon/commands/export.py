@@ -20,12 +20,20 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """The same exports as ``POST /api/v1/timelapses/{id}/exports`` (:meth:`Archive.make_exports`)."""
-    from daemon.archive import Archive
-    from daemon.storage.index import INDEX_FILE, open_index
+    import os
+    import sys
 
-    if not (args.data / INDEX_FILE).exists():
-        raise OSError(f"{args.data}: no phasewatch index here (no time-lapse was run with --data {args.data})")
-    with open_index(args.data) as index:
+    from daemon.archive import Archive
+    from daemon.timelapse.resume import open_for_reading
+
+    if args.output is None and not os.access(args.data, os.W_OK):
+        raise PermissionError(
+            13, f"{args.data} is read-only; name a folder to write the export to with --output DIR", str(args.data)
+        )
+    index, note = open_for_reading(args.data)
+    if note:
+        print(note, file=sys.stderr)
+    with index:
         made = Archive(args.data, index).make_exports(args.id, folder=args.output, stacks=args.stacks, kind=args.kind)
     print(f"wrote {made.frames_csv} ({made.frames} frames), {made.time_points_csv}, "
           f"{made.frames_csv.with_name('wells.csv')} and {made.frames_csv.with_name('growth.csv')}")

@@ -15,6 +15,7 @@ import asyncio
 import contextlib
 import datetime as dt
 import logging
+import os
 import signal
 import sys
 from collections.abc import Iterator
@@ -180,8 +181,13 @@ async def _run_scheduler(scheduler: Any, display: ProgressDisplay, data_dir: Pat
 @contextlib.contextmanager
 def _log_to_data_folder(data_dir: Path) -> Iterator[None]:
     """Diagnostics (tracebacks of internal errors) go to DATA/phasewatch.log, not the console."""
-    data_dir.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(data_dir / "phasewatch.log", encoding="utf-8")
+    from daemon.storage.index import DATA_FILE_MODE, DATA_FOLDER_MODE
+    from drivers import atomic
+
+    atomic.make_dirs(data_dir, mode=DATA_FOLDER_MODE)
+    log_path = data_dir / "phasewatch.log"
+    os.close(os.open(log_path, os.O_WRONLY | os.O_CREAT | os.O_APPEND | os.O_CLOEXEC, DATA_FILE_MODE))
+    handler = logging.FileHandler(log_path, encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     root = logging.getLogger()
     level = root.level
@@ -273,12 +279,13 @@ async def run_resume(args: argparse.Namespace) -> int:
             index.close()
 
 
-def _open_existing(data_dir: Path) -> Any:
-    from daemon.storage.index import INDEX_FILE, open_index
+def _open_existing(data_dir: Path, *, write: bool = False) -> Any:
+    from daemon.timelapse.resume import open_for_reading
 
-    if not (data_dir / INDEX_FILE).exists():
-        raise OSError(f"{data_dir}: no phasewatch index here (no time-lapse was run with --data {data_dir})")
-    return open_index(data_dir)
+    index, note = open_for_reading(data_dir, write=write)
+    if note:
+        print(note, file=sys.stderr)
+    return index
 
 
 def summarise(index: Any, tl: dict[str, Any]) -> dict[str, Any]:
@@ -340,7 +347,7 @@ def run_show(args: argparse.Namespace) -> int:
 def run_request(args: argparse.Namespace) -> int:
     from daemon.timelapse.resume import folder_busy
 
-    with _open_existing(args.data) as index:
+    with _open_existing(args.data, write=True) as index:
         tl = index.require_timelapse(args.id)
         if tl["state"] not in UNFINISHED_STATES:
             print(f"phasewatch: time-lapse {args.id} is {tl['state']}; nothing to {args.request}", file=sys.stderr)

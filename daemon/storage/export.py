@@ -12,7 +12,7 @@ import numpy as np
 import tifffile
 
 from daemon.states import FrameState
-from daemon.storage.index import Index
+from daemon.storage.index import DATA_FILE_MODE, DATA_FOLDER_MODE, Index
 from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
 from drivers import atomic
 
@@ -28,7 +28,7 @@ TIME_POINT_COLUMNS = (
 
 
 def _atomic_csv(path: Path, header: tuple[str, ...], rows: list[list[Any]]) -> None:
-    with atomic.open_atomic(path, "w", newline="", encoding="utf-8") as fh:
+    with atomic.open_atomic(path, "w", newline="", encoding="utf-8", permissions=DATA_FILE_MODE) as fh:
         writer = csv.writer(fh)
         writer.writerow(header)
         writer.writerows(rows)
@@ -39,7 +39,7 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     ``wells.csv`` (one row per well and time point: confluence of the sites used, focus)
     and ``growth.csv`` (one growth fit per well: doubling time, its uncertainty, fit quality)."""
     tl = index.require_timelapse(tl_id)
-    atomic.make_dirs(out_dir)
+    atomic.make_dirs(out_dir, mode=DATA_FOLDER_MODE)
     t0 = tl["t0_s"]
     points = {tp["tp"]: tp for tp in index.time_points(tl_id)}
     frame_rows = []
@@ -113,7 +113,7 @@ def export_stacks(
     for f in frames:
         if f["kind"] == kind:
             by_position.setdefault(f["key"], {}).setdefault(f["tp"], {})[f["z_index"]] = f
-    atomic.make_dirs(out_dir)
+    atomic.make_dirs(out_dir, mode=DATA_FOLDER_MODE)
     results = []
     for key in sorted(by_position):
         per_tp = by_position[key]
@@ -134,7 +134,7 @@ def export_stacks(
                 yield tifffile.imread(data_dir / r["path"])
 
         path = out_dir / f"{key}_{kind}.ome.tif"
-        with atomic.open_atomic(path) as fh:
+        with atomic.open_atomic(path, permissions=DATA_FILE_MODE) as fh:
             tifffile.imwrite(
                 fh, pages(), shape=shape, dtype=dtype, ome=True, photometric="minisblack",
                 metadata=metadata, software="phasewatch",

@@ -17,7 +17,7 @@ from typing import BinaryIO
 
 import numpy as np
 
-from daemon.storage.index import DuplicateFrame, Index
+from daemon.storage.index import DATA_FILE_MODE, DATA_FOLDER_MODE, DuplicateFrame, Index
 from daemon.storage.ome import FrameMeta, encode_frame
 from drivers import atomic
 
@@ -64,8 +64,8 @@ class FrameStore:
         data = encode_frame(pixels, meta)
         path = self.data_dir / rel
         try:
-            atomic.make_dirs(path.parent)
-            with atomic.open_atomic(path) as fh:
+            atomic.make_dirs(path.parent, mode=DATA_FOLDER_MODE)
+            with atomic.open_atomic(path, permissions=DATA_FILE_MODE) as fh:
                 _write_all(fh, data)
         except OSError as exc:
             raise StorageWriteError(

@@ -13,7 +13,9 @@ connection is shared between threads under a lock.
 from __future__ import annotations
 
 import contextlib
+import datetime as dt
 import json
+import os
 import re
 import sqlite3
 import threading
@@ -31,9 +33,22 @@ from daemon.states import (
     values,
 )
 from daemon.storage.ome import FrameMeta
+from drivers import atomic
 
 INDEX_FILE = "index.sqlite"
 SCHEMA_VERSION = 1
+# Written into each time-lapse's folder when it is created: what the frames' own
+# metadata cannot tell (the plan, the profile, the schedule), so a lost index can be
+# rebuilt whole from the folder.
+RECORD_FILE = "timelapse.json"
+_RECORD_COLUMNS = (
+    "id", "name", "folder", "plan_json", "profile_path", "profile_name", "created_s", "t0_s",
+    "interval_s", "count", "n_positions", "reserve_mb",
+)
+# Cultures are private to the lab: without systemd's UMask the data folder and every file
+# in it are still readable by their owner only.
+DATA_FOLDER_MODE = 0o700
+DATA_FILE_MODE = 0o600
 
 TIMELAPSE_STATES = values(TimelapseState)
 TIME_POINT_STATES = values(TimePointState)
@@ -138,11 +153,24 @@ def slug(name: str) -> str:
     return cleaned[:48] or "timelapse"
 
 
+class IndexDamaged(OSError):
+    """The index file is empty, not an SQLite database, or fails SQLite's integrity check."""
+
+
 class Index:
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, *, read_only: bool = False) -> None:
         self.path = path
-        path.parent.mkdir(parents=True, exist_ok=True)
+        self.read_only = read_only
         self._lock = threading.RLock()
+        if read_only:
+            self._conn = _connect_read_only(path)
+            self._conn.row_factory = sqlite3.Row
+            return
+        atomic.make_dirs(path.parent, mode=DATA_FOLDER_MODE)
+        if not path.exists():
+            # Created here with its mode, so SQLite's -wal and -shm files (which copy the
+            # database's permissions) are private too.
+            os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_CLOEXEC, DATA_FILE_MODE))
         # isolation_level=None: we open transactions ourselves, so each is explicit.
         self._conn = sqlite3.connect(path, check_same_thread=False, isolation_level=None, timeout=10.0)
         self._conn.row_factory = sqlite3.Row
@@ -214,7 +242,40 @@ class Index:
             )
             tl_id = int(cur.lastrowid)  # type: ignore[arg-type]
             c.execute("UPDATE timelapses SET folder = ? WHERE id = ?", (f"timelapses/{tl_id:04d}-{slug(name)}", tl_id))
+        self._write_record(tl_id)
         return tl_id
+
+    def _write_record(self, tl_id: int) -> None:
+        row = self.require_timelapse(tl_id)
+        folder = self.path.parent / row["folder"]
+        atomic.make_dirs(folder, mode=DATA_FOLDER_MODE)
+        record = {k: row[k] for k in _RECORD_COLUMNS}
+        record["plan"] = json.loads(record.pop("plan_json"))
+        atomic.write_text(folder / RECORD_FILE, json.dumps(record, indent=2) + "\n", permissions=DATA_FILE_MODE)
+
+    def restore_timelapse(self, row: dict[str, Any]) -> None:
+        """Put back a time-lapse row (with its own id) rebuilt from its folder."""
+        cols = (*_RECORD_COLUMNS, "state", "stop_reason", "finished_s")
+        with self._tx() as c:
+            c.execute(
+                f"INSERT INTO timelapses ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})",
+                tuple(row[k] for k in cols),
+            )
+
+    def restore_time_points(self, tl_id: int, points: list[dict[str, Any]], positions: list[dict[str, Any]]) -> None:
+        """Put back time points and positions rebuilt from the frames (rows as the tables hold them)."""
+        with self._tx() as c:
+            c.executemany(
+                "INSERT INTO positions (timelapse_id, tp, key, well, site, status, t_s)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (timelapse_id, tp, key) DO NOTHING",
+                [(tl_id, p["tp"], p["key"], p["well"], p["site"], p["status"], p["t_s"]) for p in positions],
+            )
+            c.executemany(
+                "INSERT INTO time_points (timelapse_id, tp, planned_s, started_s, finished_s, status, reason, n_ok)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (timelapse_id, tp) DO NOTHING",
+                [(tl_id, p["tp"], p["planned_s"], p["started_s"], p["finished_s"], p["status"], p["reason"], p["n_ok"])
+                 for p in points],
+            )
 
     def set_t0(self, tl_id: int, t0_s: float) -> None:
         """Re-anchor a time-lapse that has not run any time point yet."""
@@ -456,9 +517,76 @@ class Index:
         return self._all("SELECT * FROM alerts WHERE timelapse_id = ? ORDER BY id", (tl_id,))
 
 
-def open_index(data_dir: Path) -> Index:
-    """The index of ``data_dir`` (created with the folder when missing)."""
+def _connect_read_only(path: Path) -> sqlite3.Connection:
+    """A connection that never writes: ``mode=ro``, or ``immutable=1`` where SQLite could not
+    create the WAL's shared-memory file (a read-only folder, a write-protected card)."""
+    if not path.is_file():
+        raise FileNotFoundError(2, "no index file", str(path))
+    uri = path.resolve().as_uri()
+    last: sqlite3.Error | None = None
+    for query in ("mode=ro", "mode=ro&immutable=1"):
+        try:
+            conn = sqlite3.connect(f"{uri}?{query}", uri=True, check_same_thread=False, isolation_level=None)
+            conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
+            return conn
+        except sqlite3.OperationalError as exc:
+            last = exc
+    assert last is not None
+    raise last
+
+
+def index_problem(path: Path) -> str | None:
+    """Why the index at ``path`` cannot be used as it is (None: it can, or there is none yet)."""
+    if not path.exists():
+        return None
+    if path.stat().st_size == 0:
+        return "the index file is empty"
     try:
-        return Index(data_dir / INDEX_FILE)
+        conn = _connect_read_only(path)
+    except sqlite3.Error as exc:
+        return f"the index cannot be opened ({exc})"
+    try:
+        result = conn.execute("PRAGMA quick_check").fetchall()
+        if [tuple(r) for r in result] != [("ok",)]:
+            return f"the index fails SQLite's check ({'; '.join(str(r[0]) for r in result[:3])})"
+        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+        if "timelapses" not in tables or "frames" not in tables:
+            return "the index has no time-lapse tables"
+    except sqlite3.Error as exc:
+        return f"the index is damaged ({exc})"
+    finally:
+        conn.close()
+    return None
+
+
+def set_aside(path: Path, *, now_s: float) -> Path:
+    """Rename a damaged index (and its WAL files) out of the way, never deleting it; the new name."""
+    stamp = dt.datetime.fromtimestamp(now_s, tz=dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    target = path.with_name(f"{path.name}.damaged-{stamp}")
+    n = 1
+    while target.exists():
+        n += 1
+        target = path.with_name(f"{path.name}.damaged-{stamp}-{n}")
+    for suffix in ("-wal", "-shm"):
+        side = path.with_name(path.name + suffix)
+        if not side.exists():
+            continue
+        if suffix == "-shm" or side.stat().st_size == 0:
+            # The shared-memory file is rebuilt from the WAL by SQLite, and an empty WAL holds nothing.
+            side.unlink()
+        else:
+            atomic.move(side, target.with_name(target.name + suffix))
+    atomic.move(path, target)
+    return target
+
+
+def open_index(data_dir: Path, *, read_only: bool = False) -> Index:
+    """The index of ``data_dir`` (created with the folder when missing, unless ``read_only``)."""
+    path = data_dir / INDEX_FILE
+    try:
+        return Index(path, read_only=read_only)
     except sqlite3.DatabaseError as exc:
-        raise OSError(f"{data_dir / INDEX_FILE}: cannot open the index: {exc}") from None
+        raise IndexDamaged(
+            f"{path}: cannot open the index ({exc}); 'phasewatch index rebuild --data {data_dir}' "
+            "rebuilds it from the frame files"
+        ) from None

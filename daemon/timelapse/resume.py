@@ -11,14 +11,18 @@ from __future__ import annotations
 import contextlib
 import fcntl
 import os
+import sqlite3
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from daemon.states import UNFINISHED_STATES, TimelapseState
-from daemon.storage.index import Index, open_index
-from daemon.storage.reconcile import ReconcileReport, reconcile
+from daemon.storage.index import (
+    DATA_FILE_MODE, DATA_FOLDER_MODE, INDEX_FILE, Index, IndexDamaged, index_problem, open_index, set_aside,
+)
+from daemon.storage.reconcile import Progress, ReconcileReport, reconcile
+from drivers import atomic
 
 if TYPE_CHECKING:
     from daemon.events import Event
@@ -35,12 +39,12 @@ class FolderBusy(OSError):
 @contextlib.contextmanager
 def run_lock(data_dir: Path) -> Iterator[None]:
     """Hold the data folder's acquisition lock, or raise :class:`FolderBusy` naming the holder."""
-    data_dir.mkdir(parents=True, exist_ok=True)
+    atomic.make_dirs(data_dir, mode=DATA_FOLDER_MODE)
     path = data_dir / LOCK_FILE
     # Opened and written in place, not through drivers.atomic: the lock is held on this
     # very file, and a rename would put another one in its place. Its content (the
     # holder's pid) is only a hint for the message below.
-    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, DATA_FILE_MODE)
     try:
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -73,16 +77,39 @@ def folder_busy(data_dir: Path) -> bool:
 
 
 def open_data_folder(
-    data_dir: Path, *, verify: str = "recent", now: Callable[[], float] = time.time
+    data_dir: Path, *, verify: str = "recent", now: Callable[[], float] = time.time,
+    progress: Progress | None = None,
 ) -> tuple[Index, ReconcileReport]:
-    """Open the index and reconcile it with the files (call with the run lock held)."""
-    index = open_index(data_dir)
-    try:
-        report = reconcile(data_dir, index, verify=verify, now=now)
-    except BaseException:
-        index.close()
-        raise
-    return index, report
+    """Open the index and reconcile it with the files (call with the run lock held).
+
+    An index that is empty or damaged is renamed aside (``index.sqlite.damaged-<UTC time>``,
+    never deleted) and a new one rebuilt from the frame files; so is one whose damage only
+    shows while it is being read.
+    """
+    path = data_dir / INDEX_FILE
+    problem = index_problem(path)
+    missing = not path.exists() and has_frames(data_dir)
+    for attempt in (1, 2):
+        kept = set_aside(path, now_s=time.time()) if problem else None
+        index = open_index(data_dir)
+        try:
+            report = reconcile(data_dir, index, verify=verify, now=now, progress=progress)
+        except sqlite3.DatabaseError as exc:
+            index.close()
+            if attempt == 2:
+                raise IndexDamaged(f"{path}: the rebuilt index cannot be used either ({exc})") from None
+            problem = f"the index is damaged ({exc})"
+            continue
+        except BaseException:
+            index.close()
+            raise
+        if missing and not problem:
+            problem = "the index is missing"
+        if problem:
+            report.index_problem, report.index_kept_as = problem, kept.name if kept else None
+            index.add_alert(None, t_s=now(), level="warning", kind="storage", message=report.summary())
+        return index, report
+    raise AssertionError("unreachable")
 
 
 def pick_unfinished(index: Index, timelapse_id: int | None = None) -> dict[str, Any] | None:
@@ -114,3 +141,64 @@ def resume_scheduler(
     if unpause and row["state"] == TimelapseState.PAUSED:
         scheduler.set_miss_reason(MISSED_PAUSED)
     return scheduler
+
+
+def has_frames(data_dir: Path) -> bool:
+    """Whether any frame file lies under the data folder's time-lapses."""
+    root = data_dir / "timelapses"
+    return root.is_dir() and any(root.glob("*/t*/*.tif"))
+
+
+def rebuild_index(
+    data_dir: Path, *, verify: str = "size", now: Callable[[], float] = time.time,
+    progress: Progress | None = None, force: bool = False,
+) -> ReconcileReport:
+    """Rebuild the index from the frame files (taking the run lock); ``force`` sets aside an
+    index that looks sound too, so every row comes from the files."""
+    with run_lock(data_dir):
+        path = data_dir / INDEX_FILE
+        if force and path.exists() and index_problem(path) is None:
+            kept = set_aside(path, now_s=time.time())
+            index, report = open_data_folder(data_dir, verify=verify, now=now, progress=progress)
+            report.index_problem, report.index_kept_as = "rebuilt on request", kept.name
+        else:
+            index, report = open_data_folder(data_dir, verify=verify, now=now, progress=progress)
+        index.close()
+        return report
+
+
+def open_for_reading(data_dir: Path, *, write: bool = False) -> tuple[Index, str | None]:
+    """The index of an existing data folder for the commands that read it (list, show,
+    export), and a note to print when something was done first.
+
+    A read-only folder is read in SQLite's read-only mode. An index that is missing (with
+    frames there), empty or damaged is rebuilt from the frame files when the folder can be
+    written and no process is acquiring into it; otherwise the answer is one line saying
+    what to do. ``write``: the caller writes to the index (requests), so read-only will not do.
+    """
+    path = data_dir / INDEX_FILE
+    if not data_dir.is_dir():
+        raise FileNotFoundError(2, f"{data_dir}: no such data folder", str(data_dir))
+    problem = index_problem(path) if path.exists() else ("the index is missing" if has_frames(data_dir) else None)
+    if problem is None and not path.exists():
+        raise OSError(f"{data_dir}: no phasewatch index here (no time-lapse was run with --data {data_dir})")
+    writable = os.access(data_dir, os.W_OK) and (not path.exists() or os.access(path, os.W_OK))
+    if problem is None:
+        if writable:
+            return open_index(data_dir), None
+        if write:
+            raise PermissionError(13, f"{data_dir} is read-only; this needs to write to its index", str(data_dir))
+        return open_index(data_dir, read_only=True), None
+    rebuild = f"phasewatch index rebuild --data {data_dir}"
+    if not writable:
+        raise IndexDamaged(
+            f"{path}: {problem}, and the folder is read-only so it cannot be rebuilt here; copy the "
+            f"folder somewhere writable and run '{rebuild}' there"
+        )
+    if folder_busy(data_dir):
+        raise IndexDamaged(
+            f"{path}: {problem}; the process acquiring into {data_dir} must be stopped first "
+            f"(it rebuilds the index when it starts again, or run '{rebuild}')"
+        )
+    report = rebuild_index(data_dir)
+    return open_index(data_dir), f"data folder checked: {report.summary()}"

@@ -21,6 +21,8 @@ from pathlib import Path
 from aiohttp import web
 
 from daemon.profile import Profile
+from daemon.storage.index import DATA_FOLDER_MODE
+from drivers import atomic
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
 from daemon.web.auth import MAX_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
@@ -133,7 +135,7 @@ async def close_viewers(app: web.Application) -> None:
 
 
 def create_app(cfg: ServeConfig) -> web.Application:
-    cfg.data_dir.mkdir(parents=True, exist_ok=True)
+    atomic.make_dirs(cfg.data_dir, mode=DATA_FOLDER_MODE)
     token, _created = load_or_create_token(cfg.data_dir)
     app = web.Application(
         client_max_size=api.MAX_BODY_BYTES, middlewares=[api.error_middleware, api.auth_middleware]
