@@ -15,6 +15,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import re
+import time
 from pathlib import Path
 from typing import Any
 
@@ -23,9 +24,10 @@ import numpy as np
 import tifffile
 
 from daemon.states import FrameState, PositionState, TimePointState
-from daemon.errors import BadRequest, NotFound
+from daemon.errors import BadRequest, Damaged, NotFound
 from daemon.live import DEFAULT_QUALITY, MIN_WIDTH_PX, to_8bit
 from daemon.storage.index import Index
+from daemon.storage.verify import mark_frame
 from daemon.culture.readings import WellReading, plot_series, well_readings
 from daemon.views import latest_per_position
 from drivers.wells import normalise_well_name
@@ -190,11 +192,28 @@ class Archive:
         raise NotFound(f"time-lapse {tl_id} has no frame {frame_id}")
 
     def frame_path(self, tl_id: int, frame_id: int) -> Path:
-        """The frame's lossless file, inside the data folder."""
+        """The frame's lossless file, inside the data folder; :class:`Damaged` when the file is
+        gone or is not what was stored (marked so in the index, with an alert, on first sight)."""
         row = self.frame(tl_id, frame_id)
         path = inside(self.data_dir, row["path"])
-        if not path.is_file():
-            raise NotFound(f"frame {row['id']} is indexed but its file {row['path']} is missing (status {row['status']})")
+        status = row["status"]
+        if status == FrameState.OK:
+            try:
+                size = path.stat().st_size
+            except FileNotFoundError:
+                status = FrameState.MISSING
+            else:
+                if size != row["bytes"]:
+                    status = FrameState.DAMAGED
+            if status != FrameState.OK and not self.index.read_only:
+                mark_frame(self.index, row, status, time.time(), "a download")
+        if status == FrameState.MISSING:
+            raise Damaged(f"frame {row['id']} is indexed but its file {row['path']} is missing", status=status)
+        if status != FrameState.OK:
+            raise Damaged(
+                f"frame {row['id']} is {status}: its file {row['path']} is not the one stored "
+                f"({row['bytes']} bytes, CRC-32 {row['crc32']:08x}); it is not served", status=status,
+            )
         return path
 
     def preview(self, tl_id: int, frame_id: int, query: PreviewQuery) -> bytes:

@@ -1,7 +1,7 @@
 """Refusals of the service and the domain functions, the same for every front end.
 
 The web API turns each into its HTTP status (daemon/web/api.py): :class:`BadRequest`
-400, :class:`NotFound` 404, :class:`Busy` 409. The command line prints each as one line
+400, :class:`NotFound` 404, :class:`Busy` 409, :class:`Damaged` 410. The command line prints each as one line
 and exits with status 2 (daemon/cli.py).
 """
 
@@ -14,6 +14,15 @@ class Busy(Exception):
 
 class NotFound(LookupError):
     pass
+
+
+class Damaged(Exception):
+    """Stored data that exists in the index but whose file is damaged or gone; never served as
+    good. ``status`` is the frame state (``damaged``, ``missing``)."""
+
+    def __init__(self, message: str, *, status: str) -> None:
+        self.status = status
+        super().__init__(message)
 
 
 class BadRequest(ValueError):

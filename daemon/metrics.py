@@ -94,6 +94,14 @@ class _StationCollector(Collector):
                 done.add_metric([tl, status], n)
         yield progress
         yield done
+        check = st.storage_check
+        yield _gauge("phasewatch_storage_check_ratio",
+                     "Share of stored frames the background check has read since start", lambda: check.ratio)
+        yield _gauge("phasewatch_storage_check_frames", "Stored frames the background check is to read",
+                     lambda: check.total)
+        yield _gauge("phasewatch_storage_check_damaged_frames",
+                     "Frames the background check found damaged or missing since start",
+                     lambda: check.damaged + check.missing)
 
 
 def _gauge(name: str, doc: str, read: Callable[[], float]) -> GaugeMetricFamily:

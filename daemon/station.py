@@ -52,6 +52,7 @@ from daemon.results import (
 )
 from daemon.storage.index import Index
 from daemon.storage.space import DEFAULT_RESERVE_MB
+from daemon.storage.verify import DEFAULT_RATE_MB_S, VerifyProgress, verify_all
 from daemon.timelapse import timing
 from daemon.events import Event, EventHub
 from daemon.states import UNFINISHED_STATES as UNFINISHED
@@ -89,6 +90,7 @@ class Station:
         metrics: Metrics,
         max_fps: float,
         reserve_mb: float = DEFAULT_RESERVE_MB,
+        verify_rate_mb_s: float = DEFAULT_RATE_MB_S,
     ) -> None:
         self.profile = profile
         self.scope = scope
@@ -106,14 +108,20 @@ class Station:
         self._af_seen: set[tuple[int, int, str]] = set()
         self.last_focus: dict[str, Any] | None = None
         self.started_monotonic = time.monotonic()
+        self.verify_rate_mb_s = verify_rate_mb_s
+        self.storage_check = VerifyProgress()
+        self._verify_task: asyncio.Task[VerifyProgress] | None = None
         metrics.attach(self)
 
     # -- life cycle --------------------------------------------------------------------
 
     async def start(self) -> None:
-        """Resume the data folder's unfinished time-lapse of this profile, if any."""
+        """Start the background check of every stored frame, and resume the data folder's
+        unfinished time-lapse of this profile, if any."""
         from daemon.timelapse.resume import pick_unfinished, resume_scheduler
 
+        if self.verify_rate_mb_s > 0:
+            self._verify_task = asyncio.create_task(self._verify(), name="background frame check")
         row = await asyncio.to_thread(pick_unfinished, self.index)
         if row is None:
             return
@@ -126,8 +134,24 @@ class Station:
         scheduler = resume_scheduler(self.scope, self.data_dir, self.index, row, on_event=self._on_event)
         self._launch(scheduler)
 
+    async def _verify(self) -> VerifyProgress:
+        try:
+            return await verify_all(
+                self.data_dir, self.index, self.storage_check, rate_mb_s=self.verify_rate_mb_s, now=self.scope.clock.now,
+            )
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - reported in the status; the daemon goes on serving
+            log.exception("background frame check failed")
+            self.storage_check.error = str(exc)
+            return self.storage_check
+
     async def stop(self) -> None:
         """Leave the time-lapse unfinished (resumed on the next start) and stop live view."""
+        if self._verify_task is not None and not self._verify_task.done():
+            self._verify_task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await self._verify_task
         if self._task is not None and not self._task.done() and self.scheduler is not None:
             self.scheduler.shutdown()
             try:
@@ -535,6 +559,7 @@ class Station:
             "clock_s": scope.clock.now(),
             "clock_speed": scope.clock.speed,
             "uptime_s": round(time.monotonic() - self.started_monotonic, 1),
+            "storage_check": self.storage_check.to_dict(),
             "simulator": truth,
         }
 

@@ -38,7 +38,7 @@ def _folder_with_frames(data: Path) -> int:
             for key in KEYS:
                 for z in range(Z_PLANES):
                     seed += 1
-                    store.save(_pixels(seed), _meta(tl, tp=tp, key=key, z_index=z))
+                    store.save(_pixels(seed, shape=(120, 160)), _meta(tl, tp=tp, key=key, z_index=z))
                 index.record_position(tl, tp, key=key, well="B3", site=int(key[-1]), status="ok", t_s=1.77e9 + 600 * tp)
             index.finish_time_point(tl, tp, status="done", finished_s=1.77e9 + 600 * tp + 30)
         index.set_state(tl, "completed", finished_s=1.77e9 + 2000)

@@ -10,6 +10,7 @@ from daemon.commands.common import add_profile_options
 from drivers.options import ConfigError
 from daemon.profile import load_profile
 from daemon.storage.space import DEFAULT_RESERVE_MB
+from daemon.storage.verify import DEFAULT_RATE_MB_S
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -26,6 +27,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--no-discovery", action="store_true", help="do not advertise the scope with DNS-SD/mDNS")
     p.add_argument("--reserve-mb", type=float, default=DEFAULT_RESERVE_MB, metavar="MB",
                    help=f"time-lapses stop cleanly when less than this would stay free (default {DEFAULT_RESERVE_MB:g})")
+    p.add_argument("--verify", choices=("recent", "all", "size"), default="recent",
+                   help="start-up check of the stored frames before serving: checksums of the latest time points "
+                        "(default), of all frames, or sizes only; every frame is checked in the background after start")
+    p.add_argument("--verify-rate-mb", type=float, default=DEFAULT_RATE_MB_S, metavar="MB_PER_S",
+                   help=f"highest read rate of the background check of every stored frame "
+                        f"(default {DEFAULT_RATE_MB_S:g} MB/s; 0 turns it off)")
     p.add_argument("--log-level", choices=("debug", "info", "warning", "error"), default="info", help="log detail")
     p.set_defaults(func=run)
 
@@ -41,11 +48,14 @@ async def run(args: argparse.Namespace) -> int:
         raise ConfigError("", "serve", "--max-fps", f"must be from 0.1 to 120, got {args.max_fps}")
     if not (math.isfinite(args.reserve_mb) and args.reserve_mb >= 0):
         raise ConfigError("", "serve", "--reserve-mb", f"must be 0 or more, got {args.reserve_mb}")
+    if not (math.isfinite(args.verify_rate_mb) and args.verify_rate_mb >= 0):
+        raise ConfigError("", "serve", "--verify-rate-mb", f"must be 0 or more, got {args.verify_rate_mb}")
     logging.basicConfig(level=args.log_level.upper(), format="%(levelname)s %(name)s: %(message)s")
     logging.getLogger("aiohttp.access").setLevel(logging.WARNING)
     limit_heap_growth()
     cfg = ServeConfig(
         profile=profile, data_dir=args.data, host=args.host, port=args.port, sim_speed=args.sim_speed,
         max_fps=args.max_fps, discovery=not args.no_discovery, reserve_mb=args.reserve_mb,
+        verify=args.verify, verify_rate_mb_s=args.verify_rate_mb,
     )
     return await serve(cfg)

@@ -14,6 +14,7 @@ import tifffile
 from daemon.states import FrameState
 from daemon.storage.index import DATA_FILE_MODE, DATA_FOLDER_MODE, Index
 from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
+from daemon.storage.verify import current_statuses
 from drivers import atomic
 
 FRAME_COLUMNS = (
@@ -43,7 +44,10 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     t0 = tl["t0_s"]
     points = {tp["tp"]: tp for tp in index.time_points(tl_id)}
     frame_rows = []
-    for f in index.frames(tl_id):
+    rows = index.frames(tl_id)
+    # A damaged or missing file is marked in the export's status column, never listed as ok.
+    statuses = current_statuses(index, index.path.parent, rows, "an export")
+    for f, status in zip(rows, statuses):
         planned = points[f["tp"]]["planned_s"] if f["tp"] in points else t0 + f["tp"] * tl["interval_s"]
         found = f["focus_found"]
         frame_rows.append([
@@ -53,7 +57,7 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
             "" if f["focus_score"] is None else f"{f['focus_score']:.6g}",
             "" if found is None else ("yes" if found else "no"),
             "" if f["confluence"] is None else f"{f['confluence']:.4f}",
-            f["status"], f["path"],
+            status, f["path"],
         ])
     tp_rows = []
     for tp in points.values():
@@ -106,7 +110,8 @@ def export_stacks(
     counted; the planes' DeltaT keeps the true acquisition times.
     """
     tl = index.require_timelapse(tl_id)
-    frames = [f for f in index.frames(tl_id) if f["status"] == FrameState.OK]
+    rows = index.frames(tl_id)
+    frames = [f for f, s in zip(rows, current_statuses(index, data_dir, rows, "an export")) if s == FrameState.OK]
     if kind is None:
         kind = "corrected" if any(f["kind"] == "corrected" for f in frames) else "raw"
     by_position: dict[str, dict[int, dict[int, dict[str, Any]]]] = {}

@@ -494,6 +494,10 @@ class Index:
             " ORDER BY tp, key, kind", (tl_id, z_index, FrameState.OK),
         )
 
+    def frame_status(self, frame_id: int) -> str | None:
+        row = self._one("SELECT status FROM frames WHERE id = ?", (frame_id,))
+        return None if row is None else str(row["status"])
+
     def set_frame_status(self, frame_id: int, status: FrameState | str) -> None:
         if status not in _FRAME_STATES:
             raise ValueError(f"status must be one of {_FRAME_STATES}, got {status!r}")

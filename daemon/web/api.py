@@ -28,7 +28,7 @@ from typing import Any
 from aiohttp import web
 
 from daemon.archive import MAX_ID, AlertsQuery, ExportFile, FramesQuery, PreviewQuery
-from daemon.errors import BadRequest, Busy, NotFound
+from daemon.errors import BadRequest, Busy, Damaged, NotFound
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination import CalibrationError
 from daemon.illumination.acquire import DarkRequest, FlatRequest
@@ -104,6 +104,8 @@ async def error_middleware(
         return error_response(404, str(exc))
     except Busy as exc:
         return error_response(409, str(exc))
+    except Damaged as exc:
+        return error_response(410, str(exc), {"X-Frame-Status": exc.status})
     except LimitError as exc:
         return error_response(422, str(exc))
     except CalibrationError as exc:

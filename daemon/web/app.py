@@ -22,6 +22,7 @@ from aiohttp import web
 
 from daemon.profile import Profile
 from daemon.storage.index import DATA_FOLDER_MODE
+from daemon.storage.verify import DEFAULT_RATE_MB_S
 from drivers import atomic
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
@@ -53,6 +54,8 @@ class ServeConfig:
     max_fps: float = DEFAULT_MAX_FPS
     discovery: bool = True
     reserve_mb: float = DEFAULT_RESERVE_MB
+    verify: str = "recent"  # the start-up check: all, recent or size (see daemon.storage.reconcile)
+    verify_rate_mb_s: float = DEFAULT_RATE_MB_S  # the background check of every frame after start; 0: off
     max_token_failures: int = MAX_FAILURES  # wrong tokens per client per minute before 429
 
 
@@ -106,7 +109,9 @@ async def station_ctx(app: web.Application) -> AsyncIterator[None]:
     cfg = app[CONFIG]
     with run_lock(cfg.data_dir):
         scope = build_scope(cfg.profile, sim_speed=cfg.sim_speed, data_dir=cfg.data_dir)
-        index, report = await asyncio.to_thread(open_data_folder, cfg.data_dir, now=scope.clock.now)
+        index, report = await asyncio.to_thread(
+            open_data_folder, cfg.data_dir, verify=cfg.verify, now=scope.clock.now
+        )
         try:
             if report.removed_partials or report.reindexed or not report.clean:
                 log.warning("data folder checked: %s", report.summary())
@@ -114,6 +119,7 @@ async def station_ctx(app: web.Application) -> AsyncIterator[None]:
                 station = Station(
                     profile=cfg.profile, scope=scope, data_dir=cfg.data_dir, index=index,
                     metrics=app[METRICS], max_fps=cfg.max_fps, reserve_mb=cfg.reserve_mb,
+                    verify_rate_mb_s=cfg.verify_rate_mb_s,
                 )
                 app[STATION] = station
                 await station.start()
