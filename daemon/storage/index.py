@@ -528,7 +528,10 @@ def _connect_read_only(path: Path) -> sqlite3.Connection:
         raise FileNotFoundError(2, "no index file", str(path))
     uri = path.resolve().as_uri()
     last: sqlite3.Error | None = None
-    for query in ("mode=ro", "mode=ro&immutable=1"):
+    # In a folder nobody can write, nobody is writing the index either: reading it as
+    # immutable is safe there, and leaves no -wal or -shm file behind.
+    queries = ("mode=ro", "mode=ro&immutable=1") if os.access(path.parent, os.W_OK) else ("mode=ro&immutable=1",)
+    for query in queries:
         try:
             conn = sqlite3.connect(f"{uri}?{query}", uri=True, check_same_thread=False, isolation_level=None)
             conn.execute("SELECT count(*) FROM sqlite_master").fetchone()

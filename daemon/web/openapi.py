@@ -130,6 +130,7 @@ _ERRORS = {
     "401": "no token, or a wrong one",
     "404": "no such thing",
     "409": "the scope or time-lapse cannot do this now; the message says who holds it and what to do",
+    "410": "the stored frame is damaged or missing; the message says which and why, X-Frame-Status its state",
     "413": "request body too large",
     "422": "refused by the scope: outside the soft limits, or a plan that does not fit",
     "429": "too many wrong tokens from this client; wait",
@@ -326,9 +327,10 @@ def document() -> dict[str, Any]:
             params=[_ID], query=FramesQuery, errors=("404",))},
         f"{tl}/frames/{{frame_id}}": {"get": _get(
             "Download one frame (lossless OME-TIFF)", _binary("image/tiff", "the frame file"),
-            params=[_ID, _FRAME_ID], errors=("404",))},
+            params=[_ID, _FRAME_ID], errors=("404", "410"))},
         f"{tl}/frames/{{frame_id}}/preview.jpg": {"get": _get(
-            "A frame as a small JPEG", _binary("image/jpeg", "preview"), params=[_ID, _FRAME_ID], query=PreviewQuery, errors=("404",))},
+            "A frame as a small JPEG", _binary("image/jpeg", "preview"), params=[_ID, _FRAME_ID], query=PreviewQuery,
+            errors=("404", "410"))},
         f"{tl}/latest": {"get": _get("The newest frame of every position", _json(_ref("Latest"), "per position"),
                                      params=[_ID], errors=("404",))},
         f"{tl}/series": {"get": _get("Focus score and confluence over time; growth fit per well",
