@@ -78,6 +78,8 @@ def open_stage(ctx: StageContext) -> StageBuild:
         dialect=opts.dialect,
     )
     port = emulator.start()
+    faults = sim.faults  # type: ignore[attr-defined]
+    emulator.schedule_faults(faults.schedule(), reconnect_after_s=faults.reconnect_after_s)
     motion = GcodeController(
         port,
         baud=PTY_BAUD,

@@ -123,6 +123,38 @@ class SimOptics:
     led_bandwidth_nm: float = option(30.0, doc="spectral width of the LED (sampled uniformly)", min=0.0, max=200.0, unit="nm")
 
 
+_FAULT_TIMES = dict(min=0.0, max=1e9, unit="s")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimFaults:
+    """Controller faults to rehearse a bad night before trusting the scope with a culture.
+
+    Each list holds times in simulated seconds after the scope opens (its simulated clock,
+    so ``clock_speed`` and ``--sim-speed`` compress them too); the fault then strikes the
+    simulated controller as in drivers/sim/controller.py.
+    """
+
+    reset_at_s: list[float] = option([], doc="when the controller reboots (motion stops, coordinates lost)", **_FAULT_TIMES)
+    disconnect_at_s: list[float] = option(
+        [], doc="when the USB cable is pulled (the port disappears until reconnect_after_s later)", **_FAULT_TIMES
+    )
+    reconnect_after_s: float = option(30.0, doc="how long a pulled cable stays out", min=0.0, max=86400.0, unit="s")
+    garble_at_s: list[float] = option([], doc="when the next reply arrives as noise", **_FAULT_TIMES)
+    drop_reply_at_s: list[float] = option([], doc="when the next reply is never sent", **_FAULT_TIMES)
+    stall_at_s: list[float] = option(
+        [], doc="when the next move jams half-way and never finishes (until a halt or a reset)", **_FAULT_TIMES
+    )
+
+    def schedule(self) -> list[tuple[float, str]]:
+        """(time after opening, fault name) in time order, fault names as the controller knows them."""
+        named = (
+            ("reset", self.reset_at_s), ("disconnect", self.disconnect_at_s), ("garble", self.garble_at_s),
+            ("drop_reply", self.drop_reply_at_s), ("stall", self.stall_at_s),
+        )
+        return sorted((float(t), fault) for fault, times in named for t in times)
+
+
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class SimConfig:
     seed: int = option(20261201, doc="seed: the same seed gives the same culture and noise")
@@ -138,3 +170,4 @@ class SimConfig:
     illumination: SimIllumination = section(SimIllumination)
     motion: SimMotion = section(SimMotion)
     optics: SimOptics = section(SimOptics)
+    faults: SimFaults = section(SimFaults)

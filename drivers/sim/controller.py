@@ -52,8 +52,14 @@ Faults (:meth:`GcodeEmulator.inject`), the same in both dialects
                   one is refused as unreadable
 ``limit``         (grbl) a limit switch trips: motion stops at once, ``ALARM:1``, and the
                   board waits for a reset
+:meth:`schedule_faults` strikes them at given times of the simulated clock instead (the
+``[sim.faults]`` profile section), a disconnect followed by its reconnect.
+
 :meth:`start` returns a stable link path (a symbolic link to the current pseudo-terminal)
-for pyserial, the way a udev rule gives a board a stable name.
+for pyserial, the way a udev rule gives a board a stable name. The link lives in a
+temporary folder of its own (``phasewatch-sim-*``) with the owning process's id beside it;
+a process killed outright (SIGKILL, power cut) cannot remove it, so the next start
+removes every such folder whose owner is gone.
 """
 
 from __future__ import annotations
@@ -98,6 +104,46 @@ BANNER = REPRAP.banner
 INFO_LINE = REPRAP.info_reply("phasewatch simulated motion controller 1.0; axes X Y Z; PWM outputs 0-7")
 FIRMWARE_LINE = "firmware: phasewatch-sim motion 1.0; axes X Y Z; PWM outputs 0-7; planner 16 moves"
 FAULTS = ("reset", "disconnect", "garble", "drop_reply", "stall", "corrupt_line", "limit")
+LINK_DIR_PREFIX = "phasewatch-sim-"
+OWNER_FILE = "owner.pid"
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True  # someone else's process: alive, and not ours to judge
+    return True
+
+
+def remove_stale_link_dirs(tmp_dir: str | Path | None = None) -> list[Path]:
+    """Remove the link folders of emulators whose process is gone (killed before it could
+    clean up); the folders removed. A folder without an owner file (from an older version)
+    goes when its link points at no pseudo-terminal any more."""
+    removed = []
+    for folder in Path(tmp_dir or tempfile.gettempdir()).glob(f"{LINK_DIR_PREFIX}*"):
+        if not folder.is_dir() or folder.is_symlink():
+            continue
+        try:
+            if folder.stat().st_uid != os.getuid():
+                continue
+            owner = folder / OWNER_FILE
+            pid = int(owner.read_text(encoding="ascii").strip() or "0") if owner.exists() else 0
+            if pid > 0:
+                stale = not _alive(pid)
+            else:
+                # No owner written (an older version, or one starting this instant): stale
+                # only when its link points at no pseudo-terminal and it is not brand new.
+                young = time.time() - folder.stat().st_mtime < 60.0
+                stale = not young and not (folder / "ttySIM0").exists()
+        except (OSError, ValueError):
+            continue
+        if stale:
+            shutil.rmtree(folder, ignore_errors=True)
+            removed.append(folder)
+    return removed
 DIALECTS = ("reprap", "grbl")
 # Steps per millimetre behind the step counts of the RepRap position report: belt-driven
 # x and y, lead-screw z, as on common printer-derived stages (common practice).
@@ -260,7 +306,9 @@ class GcodeEmulator:
         if self._thread is not None:
             raise RuntimeError("the emulator is already running")
         if self._link_dir is None:
-            self._link_dir = Path(tempfile.mkdtemp(prefix="phasewatch-sim-"))
+            remove_stale_link_dirs()
+            self._link_dir = Path(tempfile.mkdtemp(prefix=LINK_DIR_PREFIX))
+            (self._link_dir / OWNER_FILE).write_text(f"{os.getpid()}\n", encoding="ascii")
         self._link_dir.mkdir(parents=True, exist_ok=True)
         self._link_path = self._link_dir / "ttySIM0"
         with self._lock:
@@ -271,10 +319,44 @@ class GcodeEmulator:
         self._thread.start()
         return str(self._link_path)
 
+    def schedule_faults(self, schedule: list[tuple[float, str]], *, reconnect_after_s: float = 30.0) -> None:
+        """Strike each ``(t_s, fault)`` at ``t_s`` simulated seconds from now (call after
+        :meth:`start`); a disconnect is plugged back in ``reconnect_after_s`` later."""
+        for _t, fault in schedule:
+            if fault not in FAULTS:
+                raise ValueError(f"unknown fault {fault!r}; one of {', '.join(FAULTS)}")
+        if not schedule:
+            return
+        start_s = self._clock.now()
+        events = sorted([(start_s + t, fault) for t, fault in schedule])
+        self.faults_struck: list[tuple[float, str]] = []
+
+        def run() -> None:
+            pending = list(events)
+            while pending and not self._stopping.wait(0.02):
+                now = self._clock.now()
+                while pending and pending[0][0] <= now:
+                    _at, fault = pending.pop(0)
+                    if fault == "reconnect":
+                        self.reconnect()
+                    else:
+                        self.inject(fault)
+                        if fault == "disconnect":
+                            pending.append((now + reconnect_after_s, "reconnect"))
+                            pending.sort()
+                    self.faults_struck.append((now - start_s, fault))
+                    log.warning("simulated controller fault: %s at %.1f s", fault, now - start_s)
+
+        self._fault_thread = threading.Thread(target=run, name="gcode-emulator-faults", daemon=True)
+        self._fault_thread.start()
+
     def stop(self) -> None:
         self._stopping.set()
         with self._lock:
             self._epoch += 1
+        fault_thread = getattr(self, "_fault_thread", None)
+        if fault_thread is not None:
+            fault_thread.join(timeout=5.0)
         if self._thread is not None:
             self._thread.join(timeout=5.0)
             self._thread = None
