@@ -173,3 +173,24 @@ def test_data_folder_and_files_are_private(tmp_path: Path) -> None:
         assert stat.S_IMODE(path.stat().st_mode) == 0o600, path
     for folder in (p for p in data.rglob("*") if p.is_dir()):
         assert stat.S_IMODE(folder.stat().st_mode) == 0o700, folder
+
+
+@pytest.mark.parametrize("record", ["kept", "lost"])
+async def test_serve_on_a_damaged_index_serves_the_rebuilt_time_lapse(tmp_path: Path, record: str) -> None:
+    from tests.web_support import served
+
+    tl = _folder_with_frames(tmp_path)
+    if record == "lost":
+        next((tmp_path / "timelapses").glob(f"*/{RECORD_FILE}")).unlink()
+    _damage(tmp_path, "page overwritten")
+    async with served(tmp_path) as srv:
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl}"), headers=srv.auth) as r:
+            detail = await r.json()
+            assert r.status == 200, detail
+        assert detail["frames"] == N_FRAMES and detail["frames_not_ok"] == 0
+        assert detail["count"] == TIME_POINTS and detail["interval_s"] == pytest.approx(600.0)
+        assert sorted(detail["positions"]) == list(KEYS)
+        for path in (f"/api/v1/timelapses/{tl}/series", f"/api/v1/timelapses/{tl}/wells/B3/readings"):
+            async with srv.session.get(srv.u(path), headers=srv.auth) as r:
+                assert r.status == 200, (path, await r.text())
+    assert _quarantined(tmp_path) == []

@@ -150,11 +150,14 @@ def timelapse_readings(index: Index, timelapse_id: int, *, tp: int | None = None
 
     row = index.require_timelapse(timelapse_id)
     spec = json.loads(row["plan_json"])
-    plan = Plan.from_dict(spec["plan"], file=f"time-lapse {timelapse_id} in {index.path}")
+    if "plan" in spec:
+        plane = Plan.from_dict(spec["plan"], file=f"time-lapse {timelapse_id} in {index.path}").analysis_plane
+    else:  # an index rebuilt from frames alone: the plane found then
+        plane = int(spec.get("analysis_plane", 0))
     planned: dict[str, int] = {}
     for pos in spec.get("positions", []):
         planned[pos["well"]] = planned.get(pos["well"], 0) + 1
-    sites = site_readings(index.frames(timelapse_id, tp), plan.analysis_plane)
+    sites = site_readings(index.frames(timelapse_id, tp), plane)
     return well_readings_of(sites, timelapse_id=timelapse_id, t0_s=row["t0_s"], planned_sites=planned)
 
 

@@ -262,6 +262,15 @@ class Index:
                 tuple(row[k] for k in cols),
             )
 
+    def restore_schedule(self, tl_id: int, *, spec: dict[str, Any], count: int, interval_s: float, n_positions: int) -> None:
+        """What the frames tell of a time-lapse whose own record was lost: its positions, the
+        plane analysed, how many time points and how far apart."""
+        with self._tx() as c:
+            c.execute(
+                "UPDATE timelapses SET plan_json = ?, count = ?, interval_s = ?, n_positions = ? WHERE id = ?",
+                (json.dumps(spec), count, interval_s, n_positions, tl_id),
+            )
+
     def restore_time_points(self, tl_id: int, points: list[dict[str, Any]], positions: list[dict[str, Any]]) -> None:
         """Put back time points and positions rebuilt from the frames (rows as the tables hold them)."""
         with self._tx() as c:

@@ -141,6 +141,23 @@ def _restore_time_points(index: Index, tl_id: int, metas: list[FrameMeta]) -> No
     by_tp: dict[int, list[FrameMeta]] = {}
     for m in metas:
         by_tp.setdefault(m.tp, []).append(m)
+    if tl["plan_json"] == "{}":
+        # No record: the frames give the positions, the planes (the middle one is analysed,
+        # as plans choose it) and the schedule (first frame of each time point).
+        firsts = sorted((tp, min(m.t_s for m in ms)) for tp, ms in by_tp.items())
+        steps = [(b[1] - a[1]) / (b[0] - a[0]) for a, b in zip(firsts, firsts[1:])]
+        keys = {m.key: m for m in metas}
+        n_z = max(m.z_index for m in metas) + 1
+        spec = {
+            "positions": [{"key": k, "well": m.well, "site": m.site, "x_um": m.x_um, "y_um": m.y_um}
+                          for k, m in sorted(keys.items())],
+            "analysis_plane": n_z // 2 if n_z > 1 else 0,
+        }
+        index.restore_schedule(
+            tl_id, spec=spec, count=max(by_tp) + 1, interval_s=sorted(steps)[len(steps) // 2] if steps else 0.0,
+            n_positions=len(keys),
+        )
+        tl = index.require_timelapse(tl_id)
     positions: list[dict[str, Any]] = []
     points: list[dict[str, Any]] = []
     for tp in sorted(by_tp):
