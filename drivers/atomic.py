@@ -121,6 +121,18 @@ def write_text(
         fh.write(text)
 
 
+def create_private(path: Path, *, permissions: int) -> None:
+    """Create ``path`` empty with ``permissions`` when it does not exist yet, for files that
+    others then write in place (an SQLite database, a log): they get their mode from the
+    first moment, as a file written here does."""
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_CLOEXEC, permissions)
+    except FileExistsError:
+        return
+    os.close(fd)
+    fsync_folder(Path(path).parent)
+
+
 def symlink(path: Path, target: str | Path) -> None:
     """Point the symbolic link ``path`` at ``target``, replacing any link there at once
     (a reader sees the old target or the new one, never no link)."""

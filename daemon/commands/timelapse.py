@@ -15,7 +15,6 @@ import asyncio
 import contextlib
 import datetime as dt
 import logging
-import os
 import signal
 import sys
 from collections.abc import Iterator
@@ -186,7 +185,7 @@ def _log_to_data_folder(data_dir: Path) -> Iterator[None]:
 
     atomic.make_dirs(data_dir, mode=DATA_FOLDER_MODE)
     log_path = data_dir / "phasewatch.log"
-    os.close(os.open(log_path, os.O_WRONLY | os.O_CREAT | os.O_APPEND | os.O_CLOEXEC, DATA_FILE_MODE))
+    atomic.create_private(log_path, permissions=DATA_FILE_MODE)
     handler = logging.FileHandler(log_path, encoding="utf-8")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     root = logging.getLogger()

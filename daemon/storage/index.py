@@ -167,10 +167,9 @@ class Index:
             self._conn.row_factory = sqlite3.Row
             return
         atomic.make_dirs(path.parent, mode=DATA_FOLDER_MODE)
-        if not path.exists():
-            # Created here with its mode, so SQLite's -wal and -shm files (which copy the
-            # database's permissions) are private too.
-            os.close(os.open(path, os.O_WRONLY | os.O_CREAT | os.O_CLOEXEC, DATA_FILE_MODE))
+        # Created here with its mode, so SQLite's -wal and -shm files (which copy the
+        # database's permissions) are private too.
+        atomic.create_private(path, permissions=DATA_FILE_MODE)
         # isolation_level=None: we open transactions ourselves, so each is explicit.
         self._conn = sqlite3.connect(path, check_same_thread=False, isolation_level=None, timeout=10.0)
         self._conn.row_factory = sqlite3.Row

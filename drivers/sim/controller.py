@@ -308,7 +308,7 @@ class GcodeEmulator:
         if self._link_dir is None:
             remove_stale_link_dirs()
             self._link_dir = Path(tempfile.mkdtemp(prefix=LINK_DIR_PREFIX))
-            (self._link_dir / OWNER_FILE).write_text(f"{os.getpid()}\n", encoding="ascii")
+            atomic.write_text(self._link_dir / OWNER_FILE, f"{os.getpid()}\n", encoding="ascii")
         self._link_dir.mkdir(parents=True, exist_ok=True)
         self._link_path = self._link_dir / "ttySIM0"
         with self._lock:
