@@ -27,6 +27,8 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
+import errno
 import logging
 import math
 import time
@@ -34,8 +36,8 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
-from daemon.errors import Busy
+from daemon.archive import Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, PreviewQuery
+from daemon.errors import Busy, NoSpace
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
@@ -76,6 +78,13 @@ REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
 ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "abort": TimelapseState.ABORTED}
+# A write that fails with one of these failed for want of space, not for a broken disk.
+NO_SPACE_ERRNOS = (errno.ENOSPC, errno.EDQUOT)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ControlRequest:
+    """Pause, resume or abort a time-lapse: no options, so any given is refused as unknown."""
 
 
 class Station:
@@ -473,8 +482,20 @@ class Station:
     async def exports(self, tl_id: int) -> list[ExportFile]:
         return await asyncio.to_thread(self.archive.exports, tl_id)
 
-    async def make_exports(self, tl_id: int) -> ExportsMade:
-        return await asyncio.to_thread(self.archive.make_exports, tl_id)
+    async def make_exports(self, tl_id: int, request: ExportRequest | None = None) -> ExportsMade:
+        """The exports of ``tl_id``; :class:`NoSpace` when the disk fills (each export file is
+        written whole or not at all, so none is left half-written)."""
+        request = request or ExportRequest()
+        try:
+            return await asyncio.to_thread(
+                self.archive.make_exports, tl_id, stacks=request.stacks, kind=request.kind
+            )
+        except OSError as exc:
+            if exc.errno not in NO_SPACE_ERRNOS:
+                raise
+            folder = self.archive.export_folder(tl_id)
+            raise NoSpace(f"not enough space for the exports in {folder}: {exc.strerror}; "
+                          "free some space and ask again (no partial file was left)") from None
 
     async def export_path(self, tl_id: int, name: str) -> Path:
         return await asyncio.to_thread(self.archive.export_path, tl_id, name)

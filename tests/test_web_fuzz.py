@@ -60,7 +60,7 @@ def test_fuzz_the_api_from_its_openapi_document(tmp_path):
     schema = schemathesis.openapi.from_dict(document())
     started = time.monotonic()
     # The fuzzer sends wrong tokens by the hundred on purpose; the lock-out has its own test.
-    with served_in_thread(tmp_path, max_token_failures=1_000_000) as (url, token):
+    with served_in_thread(tmp_path, max_token_failures=1_000_000, max_token_failures_total=1_000_000) as (url, token):
         signed_in, anonymous = requests.Session(), requests.Session()
         auth = {"Authorization": f"Bearer {token}"}
         tried = 0

@@ -23,7 +23,7 @@ from aiohttp import web
 from daemon.profile import Profile
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
-from daemon.web.auth import MAX_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
+from daemon.web.auth import MAX_FAILURES, MAX_TOTAL_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
 from daemon.web.keys import AUTH, CONFIG, METRICS, SOCKETS, STATION
 from daemon.metrics import Metrics
 from daemon.web.notify import Notifier
@@ -52,6 +52,7 @@ class ServeConfig:
     discovery: bool = True
     reserve_mb: float = DEFAULT_RESERVE_MB
     max_token_failures: int = MAX_FAILURES  # wrong tokens per client per minute before 429
+    max_token_failures_total: int = MAX_TOTAL_FAILURES  # the same from all clients together
 
 
 # -- pages and small endpoints ---------------------------------------------------------
@@ -80,6 +81,14 @@ async def static_file(request: web.Request) -> web.Response:
     if name not in STATIC_FILES:
         raise web.HTTPNotFound()
     return _static(name, STATIC_FILES[name])
+
+
+SERVER_HEADER = "phasewatch"
+
+
+async def name_the_server(request: web.Request, response: web.StreamResponse) -> None:
+    """No versions of Python or aiohttp in ``Server``: they only help someone match known flaws."""
+    response.headers["Server"] = SERVER_HEADER
 
 
 async def openapi_json(request: web.Request) -> web.Response:
@@ -141,7 +150,8 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app[CONFIG] = cfg
     app[AUTH] = Authenticator(
         token, anonymous_viewing=cfg.profile.scope.allow_anonymous_viewing,
-        limiter=FailureLimiter(max_failures=cfg.max_token_failures), token_file=token_path(cfg.data_dir),
+        limiter=FailureLimiter(max_failures=cfg.max_token_failures, max_total=cfg.max_token_failures_total),
+        token_file=token_path(cfg.data_dir),
     )
     app[METRICS] = Metrics()
     app[SOCKETS] = weakref.WeakSet()
@@ -153,6 +163,7 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app.router.add_get("/static/{name}", static_file)
     app.cleanup_ctx.append(station_ctx)
     app.on_shutdown.append(close_viewers)
+    app.on_response_prepare.append(name_the_server)
     return app
 
 
