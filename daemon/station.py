@@ -108,7 +108,10 @@ class Station:
         self.metrics = metrics
         self.reserve_mb = reserve_mb
         self.hub = EventHub()
-        self.live = LiveView(scope, max_fps=max_fps, on_error=lambda _exc: self._hardware_error("live_view"))
+        self.live = LiveView(
+            scope, max_fps=max_fps, on_error=lambda _exc: self._hardware_error("live_view"),
+            max_viewers=profile.scope.max_live_viewers, stall_s=profile.scope.live_stall_s,
+        )
         self.scheduler: Scheduler | None = None
         self._task: asyncio.Task[str] | None = None
         self._progress: dict[str, Any] | None = None

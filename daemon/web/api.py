@@ -24,6 +24,7 @@ import json
 import logging
 import math
 import re
+import socket
 from collections.abc import Awaitable, Callable
 from typing import Any
 
@@ -34,7 +35,7 @@ from daemon.errors import BadRequest, Busy, NoSpace, NotFound
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination import CalibrationError
 from daemon.illumination.acquire import DarkRequest, FlatRequest
-from daemon.live import ImageQuery, StreamQuery
+from daemon.live import ImageQuery, LiveViewFull, StreamQuery
 from daemon.manual import MoveRequest
 from daemon.requests import parse_request, parse_text_request
 from daemon.station import ControlRequest, plan_request
@@ -71,8 +72,10 @@ _KINDS = {
 }
 
 
-def error_response(status: int, message: str, headers: dict[str, str] | None = None) -> web.Response:
-    body = {"error": {"status": status, "kind": _KINDS.get(status, "error"), "message": message}}
+def error_response(
+    status: int, message: str, headers: dict[str, str] | None = None, *, kind: str | None = None
+) -> web.Response:
+    body = {"error": {"status": status, "kind": kind or _KINDS.get(status, "error"), "message": message}}
     return json_response(body, status=status, headers=headers)
 
 
@@ -108,6 +111,8 @@ async def error_middleware(
         return error_response(409, str(exc))
     except NoSpace as exc:
         return error_response(507, str(exc))
+    except LiveViewFull as exc:
+        return error_response(503, str(exc), {"Retry-After": "10"}, kind="too_many_viewers")
     except LimitError as exc:
         return error_response(422, str(exc))
     except CalibrationError as exc:
@@ -313,27 +318,54 @@ async def get_frame(request: web.Request, query: ImageQuery) -> web.Response:
 @routes.get(f"{API_PREFIX}/stream.mjpeg")
 @takes(query=StreamQuery)
 async def get_stream(request: web.Request, query: StreamQuery) -> web.StreamResponse:
-    """Multipart MJPEG: one JPEG part per frame, as live view paces them."""
+    """Multipart MJPEG: one JPEG part per frame, as live view paces them; a viewer that
+    stops reading is dropped (see :mod:`daemon.live`)."""
     live = request.app[STATION].live
-    resp = web.StreamResponse(headers={
-        "Content-Type": f"multipart/x-mixed-replace; boundary={BOUNDARY}",
-        "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{live.clamp_fps(query.fps):g}",
-    })
-    await resp.prepare(request)
-    try:
-        async for frame, jpeg in live.stream(query):
-            head = (
-                f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
-                f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\nX-Frame-Time: {frame.t_s:.3f}\r\n"
-                f"X-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
-            )
-            await resp.write(head.encode("latin-1") + jpeg + b"\r\n")
-    except (ConnectionResetError, HardwareError):
-        return resp
+    async with live.stream_slot():
+        resp = web.StreamResponse(headers={
+            "Content-Type": f"multipart/x-mixed-replace; boundary={BOUNDARY}",
+            "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{live.clamp_fps(query.fps):g}",
+        })
+        await resp.prepare(request)
+        _small_send_buffers(request)
+        try:
+            async with contextlib.aclosing(live.stream(query)) as frames:
+                async for frame, jpeg in frames:
+                    head = (
+                        f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
+                        f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\n"
+                        f"X-Frame-Time: {frame.t_s:.3f}\r\nX-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
+                    )
+                    part = head.encode("latin-1") + jpeg + b"\r\n"
+                    if not await live.write_or_drop(lambda: resp.write(part)):
+                        log.info("live view: %s read nothing for %g s; its stream is ended", _client(request),
+                                 live.stall_s)
+                        if request.transport is not None:
+                            request.transport.abort()  # what is queued for it is dropped, not kept
+                        return resp
+        except (ConnectionResetError, HardwareError):
+            return resp
     with contextlib.suppress(ConnectionResetError, RuntimeError):  # the client may be gone already
         await resp.write(f"--{BOUNDARY}--\r\n".encode())
         await resp.write_eof()
     return resp
+
+
+# Bytes the kernel may queue to one stream's viewer: a few frames. Left to itself Linux
+# grows the queue to megabytes, so a viewer that never reads would hold that much memory
+# and be noticed only after seconds of frames.
+STREAM_SEND_BUFFER_BYTES = 64 * 1024
+
+
+def _small_send_buffers(request: web.Request) -> None:
+    transport = request.transport
+    if transport is None:
+        return
+    transport.set_write_buffer_limits(high=STREAM_SEND_BUFFER_BYTES)
+    sock = transport.get_extra_info("socket")
+    if sock is not None:
+        with contextlib.suppress(OSError):
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, STREAM_SEND_BUFFER_BYTES)
 
 
 # -- manual control --------------------------------------------------------------------
