@@ -19,6 +19,8 @@ from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 
 from aiohttp import web
+from aiohttp import web_response as aiohttp_response
+from aiohttp.http_exceptions import HttpProcessingError
 
 from daemon.profile import Profile
 from daemon.storage.space import DEFAULT_RESERVE_MB
@@ -89,6 +91,29 @@ SERVER_HEADER = "phasewatch"
 async def name_the_server(request: web.Request, response: web.StreamResponse) -> None:
     """No versions of Python or aiohttp in ``Server``: they only help someone match known flaws."""
     response.headers["Server"] = SERVER_HEADER
+
+
+class OneLineBadRequests(logging.Filter):
+    """A request too malformed to reach the application (bad request line, bad header
+    syntax, a line too long) is the client's fault: one warning line, not a traceback."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        exc = record.exc_info[1] if record.exc_info else None
+        if isinstance(exc, HttpProcessingError) and 400 <= (exc.code or 0) < 500:
+            record.msg = "malformed request from %s: %s"
+            record.args = (*(record.args or ("?",))[:1], str(exc.message).splitlines()[0] if exc.message else exc.code)
+            record.exc_info = None
+            record.levelno, record.levelname = logging.WARNING, "WARNING"
+        return True
+
+
+def _quiet_server_errors() -> None:
+    # aiohttp answers such requests itself, before any application signal runs, naming
+    # its own version in Server; its module default is the only place to change that.
+    aiohttp_response.SERVER_SOFTWARE = SERVER_HEADER
+    server_log = logging.getLogger("aiohttp.server")
+    if not any(isinstance(f, OneLineBadRequests) for f in server_log.filters):
+        server_log.addFilter(OneLineBadRequests())
 
 
 async def openapi_json(request: web.Request) -> web.Response:
@@ -164,6 +189,7 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app.cleanup_ctx.append(station_ctx)
     app.on_shutdown.append(close_viewers)
     app.on_response_prepare.append(name_the_server)
+    _quiet_server_errors()
     return app
 
 
