@@ -45,6 +45,11 @@ def test_json_depth_skips_strings():
     assert json_depth(b'{"a": [1, {"b": "[[[{{\\"["}]}') == 3
     assert json_depth(b"[" * 5000 + b"]" * 5000) == 5000
     assert json_depth(b'"' + b"[" * 100 + b'"') == 0
+    # Unterminated strings of escaped quotes (which made a regular expression for strings
+    # backtrack for seconds): everything after the opening quote is inside the string.
+    assert json_depth(b'\\"' * 30000) == 0
+    assert json_depth(b"[[" + b'"' + b'\\"[' * 20000) == 2
+    assert json_depth(b'["' * 30000) == 15000  # [ opens, " starts a string the next [" ends
 
 
 @pytest.mark.parametrize("nested", ["[" * 5000 + "]" * 5000, '{"a":' * 5000 + "1" + "}" * 5000])
