@@ -60,6 +60,15 @@ class AlertsQuery:
     limit: int = option(100, doc="how many, the newest", min=1, max=1000)
 
 
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ExportRequest:
+    """Which exports to make: the CSV files always, OME-TIFF stacks unless told not to."""
+
+    stacks: bool = option(True, doc="also write one OME-TIFF stack per position")
+    kind: str | None = option(None, doc="raw or corrected frames in the stacks (default: corrected where saved)",
+                              choices=("raw", "corrected"))
+
+
 @dataclasses.dataclass(frozen=True)
 class FramePage:
     total: int

@@ -1,7 +1,8 @@
 """Refusals of the service and the domain functions, the same for every front end.
 
 The web API turns each into its HTTP status (daemon/web/api.py): :class:`BadRequest`
-400, :class:`NotFound` 404, :class:`Busy` 409, :class:`Damaged` 410. The command line prints each as one line
+400, :class:`NotFound` 404, :class:`Busy` 409, :class:`Damaged` 410, :class:`NoSpace` 507. The command line
+prints each as one line
 and exits with status 2 (daemon/cli.py).
 """
 
@@ -38,3 +39,7 @@ class BadRequest(ValueError):
         self.problem = problem
         self.field = field
         super().__init__(f"{field}: {problem}" if field else problem)
+
+
+class NoSpace(Exception):
+    """The disk is full (or the quota reached) for what was asked; nothing partial was left."""

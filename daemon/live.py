@@ -6,6 +6,12 @@ is free: whenever anyone else holds it (a time point, an autofocus, a manual mov
 viewers get that job's latest frame instead, labelled with who took it, so a time point
 pre-empts live view after at most one frame. JPEG encoding runs in worker threads, once
 per frame and size however many viewers share it.
+
+Streams are limited in number (the profile's ``[scope] max_live_viewers``), and a viewer
+that reads nothing for ``live_stall_s`` is dropped (:meth:`LiveView.write_or_drop`), so a
+browser tab left behind a sleeping laptop, or a client that connects and never reads,
+neither holds memory nor keeps the camera and the LED running for nobody. When the last
+viewer goes, the loop stops and switches the LED off.
 """
 
 from __future__ import annotations
@@ -16,7 +22,7 @@ import dataclasses
 import datetime as dt
 import logging
 import time
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator, Awaitable, Callable
 from typing import TYPE_CHECKING
 
 import cv2
@@ -40,6 +46,15 @@ MAX_WIDTH_PX = 8192
 RETRY_FIRST_S, RETRY_MAX_S = 0.5, 8.0
 # A viewer waits this long for the next frame before looking again (and noticing a close).
 NEXT_FRAME_WAIT_S = 5.0
+# A few browsers on the lab network and a wall screen; each stream costs one JPEG per
+# frame to send and its buffers, never a capture of its own.
+DEFAULT_MAX_VIEWERS = 8
+# A viewer whose frames have not been taken off the wire for this long is gone.
+DEFAULT_STALL_S = 10.0
+
+
+class LiveViewFull(Exception):
+    """As many live streams as the profile allows are open; the message says so and what to do."""
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -109,11 +124,16 @@ def encode_jpeg(frame: LiveFrame, width_px: int | None, quality: int) -> bytes:
 
 class LiveView:
     def __init__(
-        self, scope: Scope, *, max_fps: float = DEFAULT_MAX_FPS, on_error: Callable[[HardwareError], None] | None = None
+        self, scope: Scope, *, max_fps: float = DEFAULT_MAX_FPS, on_error: Callable[[HardwareError], None] | None = None,
+        max_viewers: int = DEFAULT_MAX_VIEWERS, stall_s: float = DEFAULT_STALL_S,
     ) -> None:
         self.scope = scope
         self._on_error = on_error
         self.max_fps = max_fps
+        self.max_viewers = max_viewers
+        self.stall_s = stall_s
+        self.streams = 0
+        self.streams_dropped = 0
         self.frame: LiveFrame | None = None
         self._seq = 0
         self._seen_captures = -1
@@ -165,6 +185,31 @@ class LiveView:
             yield vid
         finally:
             self._viewers.pop(vid, None)
+
+    @contextlib.asynccontextmanager
+    async def stream_slot(self) -> AsyncIterator[None]:
+        """Hold one of the ``max_viewers`` stream places; :class:`LiveViewFull` when none is free."""
+        if self.streams >= self.max_viewers:
+            raise LiveViewFull(
+                f"{self.streams} live streams are open, as many as this scope serves at once "
+                f"([scope] max_live_viewers = {self.max_viewers}); close one, or poll frame.jpg instead"
+            )
+        self.streams += 1
+        try:
+            yield
+        finally:
+            self.streams -= 1
+
+    async def write_or_drop(self, write: Callable[[], Awaitable[None]]) -> bool:
+        """Run one write of a frame to a viewer; False, and the viewer is to be dropped, when
+        it has not gone out within ``stall_s`` (the viewer is not reading)."""
+        try:
+            async with asyncio.timeout(self.stall_s):
+                await write()
+        except TimeoutError:
+            self.streams_dropped += 1
+            return False
+        return True
 
     def _ensure_loop(self) -> None:
         if self._task is None or self._task.done():
@@ -255,6 +300,18 @@ class LiveView:
                     retry_s = min(retry_s * 2, RETRY_MAX_S)
                     continue
             await asyncio.sleep(max(0.0, period_s - (time.monotonic() - started)))
+        await self._lamp_off()
+
+    async def _lamp_off(self) -> None:
+        """Nobody watches any more: the LED goes off (with ``off_between_frames = false`` it
+        stays lit between frames), unless a job holding the scope lights it for itself."""
+        if self.scope.lock.locked():
+            return
+        try:
+            async with self.scope.claim(LIVE_HOLDER):
+                await self.scope.motion.set_lamp(False)
+        except HardwareError as exc:
+            log.warning("live view: could not switch the LED off: %s", exc)
 
     async def stream(self, query: StreamQuery) -> AsyncIterator[tuple[LiveFrame, bytes]]:
         """Frames for one viewer as JPEG, at most ``fps`` a second (the newest frame each

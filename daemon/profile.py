@@ -16,6 +16,7 @@ import tomllib
 from pathlib import Path
 from typing import Any, Literal
 
+from daemon.live import DEFAULT_MAX_VIEWERS, DEFAULT_STALL_S
 from drivers.options import ConfigError, load_section, option, option_names, suggest
 from drivers.registry import (
     CameraDriver,
@@ -37,6 +38,14 @@ class ScopeSection:
     notes: str = option("", doc="free text: where the scope sits, who built it")
     allow_anonymous_viewing: bool = option(
         False, doc="let browsers view (never control) without the access token"
+    )
+    max_live_viewers: int = option(
+        DEFAULT_MAX_VIEWERS, doc="live streams served at once; more are refused with 503 until one ends",
+        min=1, max=100,
+    )
+    live_stall_s: float = option(
+        DEFAULT_STALL_S, doc="end a live stream whose viewer has read nothing for this long "
+                             "(when nobody reads any more, the camera and the LED stop)", min=1.0, max=600.0, unit="s",
     )
 
 

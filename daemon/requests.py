@@ -57,8 +57,20 @@ def parse_text_request(cls: type[T], texts: Mapping[str, str | list[str]]) -> T:
     for key, text in texts.items():
         if text == "" or text == []:
             continue
-        table[key] = _from_text(text, hints.get(key, str))
+        try:
+            table[key] = _from_text(text, hints.get(key, str))
+        except _TooManyDigits as exc:
+            raise BadRequest(str(exc), field=key) from None
     return parse_request(cls, table)
+
+
+# 2**63 has 19 digits: a longer whole number cannot fit in 64 bits, and Python refuses to
+# convert one of over 4300 digits at all.
+_MAX_DIGITS = 19
+
+
+class _TooManyDigits(ValueError):
+    pass
 
 
 def alternatives(tp: Any) -> tuple[Any, ...]:
@@ -78,6 +90,8 @@ def _from_text(text: str | list[str], tp: Any) -> Any:
         if kind is bool and text.lower() in ("true", "false"):
             return text.lower() == "true"
         if kind in (int, float) and _WHOLE.fullmatch(text.strip()):
+            if len(text.strip().lstrip("+-").lstrip("0")) > _MAX_DIGITS:
+                raise _TooManyDigits(f"must fit in 64 bits, got a whole number of {len(text.strip())} digits")
             return int(text)  # as JSON would carry "60": the loader takes it for a number, and says "60" back
         if kind is float:
             try:

@@ -27,6 +27,8 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import dataclasses
+import errno
 import logging
 import math
 import time
@@ -34,8 +36,8 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
-from daemon.errors import Busy
+from daemon.archive import Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, PreviewQuery
+from daemon.errors import Busy, NoSpace
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
@@ -77,6 +79,13 @@ REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
 ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "abort": TimelapseState.ABORTED}
+# A write that fails with one of these failed for want of space, not for a broken disk.
+NO_SPACE_ERRNOS = (errno.ENOSPC, errno.EDQUOT)
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ControlRequest:
+    """Pause, resume or abort a time-lapse: no options, so any given is refused as unknown."""
 
 
 class Station:
@@ -101,7 +110,10 @@ class Station:
         self.metrics = metrics
         self.reserve_mb = reserve_mb
         self.hub = EventHub()
-        self.live = LiveView(scope, max_fps=max_fps, on_error=lambda _exc: self._hardware_error("live_view"))
+        self.live = LiveView(
+            scope, max_fps=max_fps, on_error=lambda _exc: self._hardware_error("live_view"),
+            max_viewers=profile.scope.max_live_viewers, stall_s=profile.scope.live_stall_s,
+        )
         self.scheduler: Scheduler | None = None
         self._task: asyncio.Task[str] | None = None
         self._progress: dict[str, Any] | None = None
@@ -497,8 +509,20 @@ class Station:
     async def exports(self, tl_id: int) -> list[ExportFile]:
         return await asyncio.to_thread(self.archive.exports, tl_id)
 
-    async def make_exports(self, tl_id: int) -> ExportsMade:
-        return await asyncio.to_thread(self.archive.make_exports, tl_id)
+    async def make_exports(self, tl_id: int, request: ExportRequest | None = None) -> ExportsMade:
+        """The exports of ``tl_id``; :class:`NoSpace` when the disk fills (each export file is
+        written whole or not at all, so none is left half-written)."""
+        request = request or ExportRequest()
+        try:
+            return await asyncio.to_thread(
+                self.archive.make_exports, tl_id, stacks=request.stacks, kind=request.kind
+            )
+        except OSError as exc:
+            if exc.errno not in NO_SPACE_ERRNOS:
+                raise
+            folder = self.archive.export_folder(tl_id)
+            raise NoSpace(f"not enough space for the exports in {folder}: {exc.strerror}; "
+                          "free some space and ask again (no partial file was left)") from None
 
     async def export_path(self, tl_id: int, name: str) -> Path:
         return await asyncio.to_thread(self.archive.export_path, tl_id, name)

@@ -92,9 +92,9 @@ async def test_wrong_tokens_are_rate_limited(tmp_path):
         async with srv.session.get(srv.u("/api/v1/status"), headers=bad) as r:
             assert r.status == 429
             assert int(r.headers["Retry-After"]) > 0
-        # Locked out means locked out: not even the right token is tried meanwhile.
+        # A guesser cannot lock the owner out: the right token from the same address still works.
         async with srv.session.get(srv.u("/api/v1/status"), headers=srv.auth) as r:
-            assert r.status == 429
+            assert r.status == 200
 
 
 async def test_view_cookie_views_but_never_changes(tmp_path):

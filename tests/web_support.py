@@ -98,12 +98,13 @@ async def served(
 
 @contextlib.contextmanager
 def served_in_thread(
-    data_dir: Path, profile: Profile | None = None, *, speed: float = 1000.0, max_token_failures: int = 10
+    data_dir: Path, profile: Profile | None = None, *, speed: float = 1000.0, max_token_failures: int = 10,
+    max_token_failures_total: int = 100,
 ) -> Iterator[tuple[str, str]]:
     """The whole daemon (:func:`daemon.web.app.serve`) in a thread, for blocking clients; (url, token)."""
     cfg = ServeConfig(
         profile=profile or web_profile(), data_dir=data_dir, host=LOOPBACK, port=0, sim_speed=speed, discovery=False,
-        max_token_failures=max_token_failures,
+        max_token_failures=max_token_failures, max_token_failures_total=max_token_failures_total,
     )
     ready = threading.Event()
     port: list[int] = []

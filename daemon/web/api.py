@@ -10,7 +10,8 @@ Every error a client can cause comes back as ``{"error": {"status", "kind", "mes
 with a message a person can act on: 400 malformed request, 401 no or wrong token, 404
 unknown thing, 409 the scope or time-lapse cannot do that now (and why), 413 body too
 large, 422 a request the scope refuses (soft limits, a plan that does not fit), 429 too
-many wrong tokens, 503 hardware trouble.
+many wrong tokens, 503 hardware trouble or too many live viewers, 507 not enough space on
+the disk for what was asked.
 """
 
 from __future__ import annotations
@@ -22,23 +23,24 @@ import functools
 import json
 import logging
 import math
+import socket
 from collections.abc import Awaitable, Callable
 from typing import Any
 
 from aiohttp import web
 
-from daemon.archive import MAX_ID, AlertsQuery, ExportFile, FramesQuery, PreviewQuery
-from daemon.errors import BadRequest, Busy, Damaged, NotFound
+from daemon.archive import MAX_ID, AlertsQuery, ExportFile, ExportRequest, FramesQuery, PreviewQuery
+from daemon.errors import BadRequest, Busy, Damaged, NoSpace, NotFound
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination import CalibrationError
 from daemon.illumination.acquire import DarkRequest, FlatRequest
-from daemon.live import ImageQuery, StreamQuery
+from daemon.live import ImageQuery, LiveViewFull, StreamQuery
 from daemon.manual import MoveRequest
 from daemon.requests import parse_request, parse_text_request
-from daemon.station import plan_request
+from daemon.station import ControlRequest, plan_request
 from daemon.timelapse.plan import PlanOptions
 from daemon.web import API_PREFIX
-from daemon.web.auth import VIEW_COOKIE, Authenticator
+from daemon.web.auth import VIEW_COOKIE, Authenticator, SessionRequest
 from daemon.web.checks import json_safe
 from daemon.web.keys import AUTH, METRICS, STATION
 from drivers.base import HardwareError, LimitError
@@ -65,12 +67,14 @@ def json_response(data: Any, status: int = 200, headers: dict[str, str] | None =
 _KINDS = {
     400: "bad_request", 401: "unauthorized", 403: "forbidden", 404: "not_found", 405: "method_not_allowed",
     409: "conflict", 413: "too_large", 422: "refused", 429: "too_many_attempts", 500: "internal",
-    503: "hardware",
+    503: "hardware", 507: "no_space",
 }
 
 
-def error_response(status: int, message: str, headers: dict[str, str] | None = None) -> web.Response:
-    body = {"error": {"status": status, "kind": _KINDS.get(status, "error"), "message": message}}
+def error_response(
+    status: int, message: str, headers: dict[str, str] | None = None, *, kind: str | None = None
+) -> web.Response:
+    body = {"error": {"status": status, "kind": kind or _KINDS.get(status, "error"), "message": message}}
     return json_response(body, status=status, headers=headers)
 
 
@@ -106,6 +110,10 @@ async def error_middleware(
         return error_response(409, str(exc))
     except Damaged as exc:
         return error_response(410, str(exc), {"X-Frame-Status": exc.status})
+    except NoSpace as exc:
+        return error_response(507, str(exc))
+    except LiveViewFull as exc:
+        return error_response(503, str(exc), {"Retry-After": "10"}, kind="too_many_viewers")
     except LimitError as exc:
         return error_response(422, str(exc))
     except CalibrationError as exc:
@@ -136,27 +144,17 @@ async def auth_middleware(
     if not (path.startswith("/api/") or path == "/metrics") or path == f"{API_PREFIX}/openapi.json":
         return await handler(request)
     auth: Authenticator = request.app[AUTH]
-    client = _client(request)
-    wait_s = auth.limiter.blocked_for_s(client)
-    if wait_s > 0:
-        raise web.HTTPTooManyRequests(
-            text=f"too many wrong tokens from {client}; try again in {math.ceil(wait_s)} s",
-            headers={"Retry-After": str(math.ceil(wait_s))},
-        )
     bearer = auth.check_bearer(request.headers.get("Authorization"))
-    reading = request.method in READ_METHODS
-    # A wrong view cookie (left over from an old token) is no credential, not a guess:
-    # only wrong tokens count towards the lock-out.
-    cookie = reading and bool(auth.check_cookie(request.cookies.get(VIEW_COOKIE)))
-    if bearer is False:
-        auth.limiter.fail(client)
-        request.app[METRICS].auth_failures.inc()
-        raise web.HTTPUnauthorized(
-            text="wrong access token; the token is printed by: phasewatch token --data DIR",
-            headers={"WWW-Authenticate": 'Bearer realm="phasewatch", error="invalid_token"'},
-        )
-    if bearer or (reading and (cookie or auth.anonymous_viewing)):
+    if bearer:
+        # The right token is never refused, however many wrong ones others (or this
+        # address, shared behind a NAT) have sent: a guesser cannot lock the owner out.
         return await handler(request)
+    reading = request.method in READ_METHODS
+    cookie = auth.check_cookie(request.cookies.get(VIEW_COOKIE)) if reading else None
+    if reading and (cookie or (bearer is None and auth.anonymous_viewing)):
+        return await handler(request)
+    if bearer is False or cookie is False:
+        _refuse_wrong(request, auth, "access token" if bearer is False else "view cookie")
     request.app[METRICS].auth_failures.inc()
     what = "viewing needs" if reading else "changes need"
     raise web.HTTPUnauthorized(
@@ -165,15 +163,75 @@ async def auth_middleware(
     )
 
 
+def _refuse_wrong(request: web.Request, auth: Authenticator, what: str) -> None:
+    """A wrong token or view cookie: 429 while this address, or all addresses together,
+    have sent too many lately, else counted and 401."""
+    client = _client(request)
+    wait_s = auth.limiter.blocked_for_s(client)
+    if wait_s > 0:
+        who = "all clients" if auth.limiter.overall() else client
+        raise web.HTTPTooManyRequests(
+            text=f"too many wrong tokens or view cookies from {who}; try again in {math.ceil(wait_s)} s",
+            headers={"Retry-After": str(math.ceil(wait_s))},
+        )
+    auth.limiter.fail(client)
+    request.app[METRICS].auth_failures.inc()
+    if what == "view cookie":
+        raise web.HTTPUnauthorized(
+            text="this view cookie is no longer valid (the token was renewed); sign in again with the token",
+            headers={"WWW-Authenticate": 'Bearer realm="phasewatch"'},
+        )
+    raise web.HTTPUnauthorized(
+        text="wrong access token; the token is printed by: phasewatch token --data DIR",
+        headers={"WWW-Authenticate": 'Bearer realm="phasewatch", error="invalid_token"'},
+    )
+
+
 # -- requests --------------------------------------------------------------------------
+
+
+# No request nests deeper than a plan's z-stack inside a plan; the JSON decoder recurses
+# once per level, so a deeper body is refused before it is decoded.
+MAX_JSON_DEPTH = 32
+_OPEN, _CLOSE, _QUOTE, _BACKSLASH = frozenset(b"[{"), frozenset(b"]}"), ord('"'), ord("\\")
+
+
+def json_depth(raw: bytes) -> int:
+    """How deep arrays and objects nest in ``raw`` (strings skipped), without decoding it.
+
+    One pass, linear in the length whatever the bytes (a regular expression for strings
+    backtracks quadratically on a body of unterminated escapes)."""
+    depth = deepest = 0
+    in_string = escaped = False
+    for ch in raw:
+        if in_string:
+            if escaped:
+                escaped = False
+            elif ch == _BACKSLASH:
+                escaped = True
+            elif ch == _QUOTE:
+                in_string = False
+        elif ch == _QUOTE:
+            in_string = True
+        elif ch in _OPEN:
+            depth += 1
+            if depth > deepest:
+                deepest = depth
+        elif ch in _CLOSE:
+            depth -= 1
+    return deepest
 
 
 async def read_json(request: web.Request) -> dict[str, Any]:
     raw = await request.read()  # bounded by the application's client_max_size (413 beyond)
     if not raw.strip():
         return {}
+    if (depth := json_depth(raw)) > MAX_JSON_DEPTH:
+        raise BadRequest(f"the request body nests {depth} levels deep; at most {MAX_JSON_DEPTH} are allowed")
     try:
         body = json.loads(raw)
+    except RecursionError:  # the scan above should make this unreachable; never a 500 if not
+        raise BadRequest(f"the request body nests too deeply; at most {MAX_JSON_DEPTH} levels are allowed") from None
     except (UnicodeDecodeError, ValueError) as exc:
         raise BadRequest(f"the request body is not valid JSON ({exc})") from None
     if not isinstance(body, dict):
@@ -275,27 +333,54 @@ async def get_frame(request: web.Request, query: ImageQuery) -> web.Response:
 @routes.get(f"{API_PREFIX}/stream.mjpeg")
 @takes(query=StreamQuery)
 async def get_stream(request: web.Request, query: StreamQuery) -> web.StreamResponse:
-    """Multipart MJPEG: one JPEG part per frame, as live view paces them."""
+    """Multipart MJPEG: one JPEG part per frame, as live view paces them; a viewer that
+    stops reading is dropped (see :mod:`daemon.live`)."""
     live = request.app[STATION].live
-    resp = web.StreamResponse(headers={
-        "Content-Type": f"multipart/x-mixed-replace; boundary={BOUNDARY}",
-        "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{live.clamp_fps(query.fps):g}",
-    })
-    await resp.prepare(request)
-    try:
-        async for frame, jpeg in live.stream(query):
-            head = (
-                f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
-                f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\nX-Frame-Time: {frame.t_s:.3f}\r\n"
-                f"X-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
-            )
-            await resp.write(head.encode("latin-1") + jpeg + b"\r\n")
-    except (ConnectionResetError, HardwareError):
-        return resp
+    async with live.stream_slot():
+        resp = web.StreamResponse(headers={
+            "Content-Type": f"multipart/x-mixed-replace; boundary={BOUNDARY}",
+            "Cache-Control": "no-store", "X-Frame-Rate-Cap": f"{live.clamp_fps(query.fps):g}",
+        })
+        await resp.prepare(request)
+        _small_send_buffers(request)
+        try:
+            async with contextlib.aclosing(live.stream(query)) as frames:
+                async for frame, jpeg in frames:
+                    head = (
+                        f"--{BOUNDARY}\r\nContent-Type: image/jpeg\r\nContent-Length: {len(jpeg)}\r\n"
+                        f"X-Frame-Source: {frame.source}\r\nX-Frame-Seq: {frame.seq}\r\n"
+                        f"X-Frame-Time: {frame.t_s:.3f}\r\nX-Frame-Wall: {frame.wall_s:.4f}\r\n\r\n"
+                    )
+                    part = head.encode("latin-1") + jpeg + b"\r\n"
+                    if not await live.write_or_drop(lambda: resp.write(part)):
+                        log.info("live view: %s read nothing for %g s; its stream is ended", _client(request),
+                                 live.stall_s)
+                        if request.transport is not None:
+                            request.transport.abort()  # what is queued for it is dropped, not kept
+                        return resp
+        except (ConnectionResetError, HardwareError):
+            return resp
     with contextlib.suppress(ConnectionResetError, RuntimeError):  # the client may be gone already
         await resp.write(f"--{BOUNDARY}--\r\n".encode())
         await resp.write_eof()
     return resp
+
+
+# Bytes the kernel may queue to one stream's viewer: a few frames. Left to itself Linux
+# grows the queue to megabytes, so a viewer that never reads would hold that much memory
+# and be noticed only after seconds of frames.
+STREAM_SEND_BUFFER_BYTES = 64 * 1024
+
+
+def _small_send_buffers(request: web.Request) -> None:
+    transport = request.transport
+    if transport is None:
+        return
+    transport.set_write_buffer_limits(high=STREAM_SEND_BUFFER_BYTES)
+    sock = transport.get_extra_info("socket")
+    if sock is not None:
+        with contextlib.suppress(OSError):
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_SNDBUF, STREAM_SEND_BUFFER_BYTES)
 
 
 # -- manual control --------------------------------------------------------------------
@@ -367,23 +452,25 @@ async def get_timelapse(request: web.Request) -> web.Response:
 
 
 async def _control(request: web.Request, action: str) -> web.Response:
-    await read_json(request)  # no options yet, but a malformed body is still an error
     done = await request.app[STATION].control_timelapse(tl_id_of(request), action)
     return json_response(done.to_json(), status=200 if done.done else 202)
 
 
 @routes.post(r"/api/v1/timelapses/{id:\d+}/pause")
-async def post_pause(request: web.Request) -> web.Response:
+@takes(body=ControlRequest)
+async def post_pause(request: web.Request, body: ControlRequest) -> web.Response:
     return await _control(request, "pause")
 
 
 @routes.post(r"/api/v1/timelapses/{id:\d+}/resume")
-async def post_resume(request: web.Request) -> web.Response:
+@takes(body=ControlRequest)
+async def post_resume(request: web.Request, body: ControlRequest) -> web.Response:
     return await _control(request, "resume")
 
 
 @routes.post(r"/api/v1/timelapses/{id:\d+}/abort")
-async def post_abort(request: web.Request) -> web.Response:
+@takes(body=ControlRequest)
+async def post_abort(request: web.Request, body: ControlRequest) -> web.Response:
     return await _control(request, "abort")
 
 
@@ -434,10 +521,10 @@ async def get_well_readings(request: web.Request) -> web.Response:
 
 
 @routes.post(r"/api/v1/timelapses/{id:\d+}/exports")
-async def post_export(request: web.Request) -> web.Response:
-    await read_json(request)
+@takes(body=ExportRequest)
+async def post_export(request: web.Request, body: ExportRequest) -> web.Response:
     tl_id = tl_id_of(request)
-    made = await request.app[STATION].make_exports(tl_id)
+    made = await request.app[STATION].make_exports(tl_id, body)
     return json_response({
         "files": _export_links(tl_id, made.files),
         "stacks": [{"position": s.position, "time_points": s.time_points, "z_planes": s.z_planes,
@@ -468,9 +555,9 @@ async def get_alerts(request: web.Request, query: AlertsQuery) -> web.Response:
 
 
 @routes.post(f"{API_PREFIX}/session")
-async def post_session(request: web.Request) -> web.Response:
+@takes(body=SessionRequest)
+async def post_session(request: web.Request, body: SessionRequest) -> web.Response:
     """Swap the token for a view cookie, so that <img> and WebSocket requests can view."""
-    await read_json(request)
     resp = json_response({"viewing": True, "message": "this browser may now view; changes still need the token"})
     resp.set_cookie(VIEW_COOKIE, request.app[AUTH].cookie_value, httponly=True, samesite="Strict", path="/")
     return resp

@@ -19,6 +19,8 @@ from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 
 from aiohttp import web
+from aiohttp import web_response as aiohttp_response
+from aiohttp.http_exceptions import HttpProcessingError
 
 from daemon.profile import Profile
 from daemon.storage.index import DATA_FOLDER_MODE
@@ -26,7 +28,7 @@ from daemon.storage.verify import DEFAULT_RATE_MB_S
 from drivers import atomic
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
-from daemon.web.auth import MAX_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
+from daemon.web.auth import MAX_FAILURES, MAX_TOTAL_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
 from daemon.web.keys import AUTH, CONFIG, METRICS, SOCKETS, STATION
 from daemon.metrics import Metrics
 from daemon.web.notify import Notifier
@@ -57,6 +59,7 @@ class ServeConfig:
     verify: str = "recent"  # the start-up check: all, recent or size (see daemon.storage.reconcile)
     verify_rate_mb_s: float = DEFAULT_RATE_MB_S  # the background check of every frame after start; 0: off
     max_token_failures: int = MAX_FAILURES  # wrong tokens per client per minute before 429
+    max_token_failures_total: int = MAX_TOTAL_FAILURES  # the same from all clients together
 
 
 # -- pages and small endpoints ---------------------------------------------------------
@@ -85,6 +88,37 @@ async def static_file(request: web.Request) -> web.Response:
     if name not in STATIC_FILES:
         raise web.HTTPNotFound()
     return _static(name, STATIC_FILES[name])
+
+
+SERVER_HEADER = "phasewatch"
+
+
+async def name_the_server(request: web.Request, response: web.StreamResponse) -> None:
+    """No versions of Python or aiohttp in ``Server``: they only help someone match known flaws."""
+    response.headers["Server"] = SERVER_HEADER
+
+
+class OneLineBadRequests(logging.Filter):
+    """A request too malformed to reach the application (bad request line, bad header
+    syntax, a line too long) is the client's fault: one warning line, not a traceback."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        exc = record.exc_info[1] if record.exc_info else None
+        if isinstance(exc, HttpProcessingError) and 400 <= (exc.code or 0) < 500:
+            record.msg = "malformed request from %s: %s"
+            record.args = (*(record.args or ("?",))[:1], str(exc.message).splitlines()[0] if exc.message else exc.code)
+            record.exc_info = None
+            record.levelno, record.levelname = logging.WARNING, "WARNING"
+        return True
+
+
+def _quiet_server_errors() -> None:
+    # aiohttp answers such requests itself, before any application signal runs, naming
+    # its own version in Server; its module default is the only place to change that.
+    aiohttp_response.SERVER_SOFTWARE = SERVER_HEADER
+    server_log = logging.getLogger("aiohttp.server")
+    if not any(isinstance(f, OneLineBadRequests) for f in server_log.filters):
+        server_log.addFilter(OneLineBadRequests())
 
 
 async def openapi_json(request: web.Request) -> web.Response:
@@ -149,7 +183,8 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app[CONFIG] = cfg
     app[AUTH] = Authenticator(
         token, anonymous_viewing=cfg.profile.scope.allow_anonymous_viewing,
-        limiter=FailureLimiter(max_failures=cfg.max_token_failures), token_file=token_path(cfg.data_dir),
+        limiter=FailureLimiter(max_failures=cfg.max_token_failures, max_total=cfg.max_token_failures_total),
+        token_file=token_path(cfg.data_dir),
     )
     app[METRICS] = Metrics()
     app[SOCKETS] = weakref.WeakSet()
@@ -161,6 +196,8 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app.router.add_get("/static/{name}", static_file)
     app.cleanup_ctx.append(station_ctx)
     app.on_shutdown.append(close_viewers)
+    app.on_response_prepare.append(name_the_server)
+    _quiet_server_errors()
     return app
 
 

@@ -4,13 +4,16 @@ Every request that changes anything carries ``Authorization: Bearer <token>``. V
 (GET) needs the token too unless the profile allows anonymous viewing. A browser that
 showed the token once gets a view cookie (an HMAC of the token, so a new token voids old
 cookies); it is good for viewing only, never for changes, so a forged cross-site form
-cannot move the stage. Tokens are compared in constant time, and a client that keeps
-sending wrong ones is locked out for a while.
+cannot move the stage. Tokens are compared in constant time. Wrong tokens and wrong
+view cookies are limited per client address and over all addresses together (so that
+rotating addresses gains a guesser nothing); the right token is never refused for
+anyone's wrong ones, so a guesser cannot lock the owner out.
 """
 
 from __future__ import annotations
 
 import collections
+import dataclasses
 import hashlib
 import hmac
 import os
@@ -26,8 +29,10 @@ from drivers import atomic
 TOKEN_FILE = "access-token"
 TOKEN_BYTES = 32  # 256 bits from the OS's CSPRNG (secrets module)
 VIEW_COOKIE = "phasewatch_view"
-# Failed attempts allowed per client in the window before it is refused with 429.
+# Failed attempts allowed per client in the window before its wrong ones get 429.
 MAX_FAILURES = 10
+# Failed attempts allowed from all clients together in the window: ten clients' worth.
+MAX_TOTAL_FAILURES = 100
 FAILURE_WINDOW_S = 60.0
 
 
@@ -74,18 +79,26 @@ def view_cookie_value(token: str) -> str:
     return hmac.new(token.encode(), b"phasewatch view cookie", hashlib.sha256).hexdigest()
 
 
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SessionRequest:
+    """Swap the token for a view cookie: no options, so any given is refused as unknown."""
+
+
 class FailureLimiter:
-    """Counts failed token attempts per client over a sliding window (bounded memory)."""
+    """Counts failed attempts per client and over all clients in a sliding window (bounded memory)."""
 
     def __init__(
         self, max_failures: int = MAX_FAILURES, window_s: float = FAILURE_WINDOW_S,
         clock: Callable[[], float] = time.monotonic, max_clients: int = 4096,
+        max_total: int = MAX_TOTAL_FAILURES,
     ) -> None:
         self.max_failures = max_failures
+        self.max_total = max_total
         self.window_s = window_s
         self._clock = clock
         self._max_clients = max_clients
         self._failures: collections.OrderedDict[str, collections.deque[float]] = collections.OrderedDict()
+        self._all: collections.deque[float] = collections.deque(maxlen=max_total)
 
     def _recent(self, client: str) -> collections.deque[float]:
         now = self._clock()
@@ -98,20 +111,32 @@ class FailureLimiter:
             del self._failures[client]
         return q
 
-    def blocked_for_s(self, client: str) -> float:
-        """Seconds until ``client`` may try again (0 when it may now)."""
-        q = self._recent(client)
-        if len(q) < self.max_failures:
+    def _wait_s(self, q: collections.deque[float], limit: int) -> float:
+        if len(q) < limit:
             return 0.0
         return max(0.0, self.window_s - (self._clock() - q[0]))
 
+    def blocked_for_s(self, client: str) -> float:
+        """Seconds until ``client`` may try again (0 when it may now): its own failures, or
+        everyone's together."""
+        now = self._clock()
+        while self._all and now - self._all[0] > self.window_s:
+            self._all.popleft()
+        return max(self._wait_s(self._recent(client), self.max_failures), self._wait_s(self._all, self.max_total))
+
+    def overall(self) -> bool:
+        """Whether the overall limit (not only this client's) is what refuses now."""
+        return self._wait_s(self._all, self.max_total) > 0
+
     def reset(self) -> None:
         self._failures.clear()
+        self._all.clear()
 
     def fail(self, client: str) -> None:
         q = self._failures.setdefault(client, collections.deque())
         self._failures.move_to_end(client)
         q.append(self._clock())
+        self._all.append(q[-1])
         while len(q) > self.max_failures:
             q.popleft()
         while len(self._failures) > self._max_clients:
@@ -166,16 +191,30 @@ class Authenticator:
         if not header:
             return None
         scheme, _, value = header.partition(" ")
-        if scheme.lower() != "bearer" or not value.strip():
+        given = _ascii(value.strip())
+        if scheme.lower() != "bearer" or not given:
             return False
-        return hmac.compare_digest(value.strip().encode(), self._token)
+        return hmac.compare_digest(given, self._token)
 
     def check_cookie(self, value: str | None) -> bool | None:
         self._reload_if_changed()
         if not value:
             return None
-        return hmac.compare_digest(value.encode(), self._cookie)
+        given = _ascii(value)
+        return given is not None and hmac.compare_digest(given, self._cookie)
 
     @property
     def cookie_value(self) -> str:
         return self._cookie.decode()
+
+
+def _ascii(text: str) -> bytes | None:
+    """A credential as bytes; None when it is not ASCII, as no token or cookie of ours is.
+
+    HTTP headers arrive as bytes, and bytes that are not UTF-8 reach here as lone
+    surrogates: such a header is a wrong credential like any other, never an error.
+    """
+    try:
+        return text.encode("ascii")
+    except UnicodeEncodeError:
+        return None

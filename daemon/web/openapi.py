@@ -17,15 +17,17 @@ import typing
 from typing import Any
 
 from daemon import __version__
-from daemon.archive import AlertsQuery, FramesQuery, PreviewQuery
+from daemon.archive import AlertsQuery, ExportRequest, FramesQuery, PreviewQuery
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination.acquire import DarkRequest, FlatRequest
 from daemon.live import ImageQuery, StreamQuery
 from daemon.manual import MoveRequest
 from daemon.requests import default_of, has_default, request_fields
 from daemon.states import FocusState
+from daemon.station import ControlRequest
 from daemon.timelapse.plan import PlanOptions
 from daemon.web import API_PREFIX
+from daemon.web.auth import SessionRequest
 from drivers.options import INT_MAX, INT_MIN
 
 P = API_PREFIX
@@ -47,6 +49,9 @@ REQUEST_BODIES: dict[str, RequestBody] = {
     "DarkRequest": RequestBody(DarkRequest),
     "FlatRequest": RequestBody(FlatRequest),
     "Plan": RequestBody(PlanOptions, omit=("vessel_file",)),
+    "ControlRequest": RequestBody(ControlRequest),
+    "ExportRequest": RequestBody(ExportRequest),
+    "SessionRequest": RequestBody(SessionRequest),
 }
 
 _SCALARS = {float: "number", int: "integer", str: "string", bool: "boolean"}
@@ -134,7 +139,8 @@ _ERRORS = {
     "413": "request body too large",
     "422": "refused by the scope: outside the soft limits, or a plan that does not fit",
     "429": "too many wrong tokens from this client; wait",
-    "503": "hardware trouble (camera, controller)",
+    "503": "hardware trouble (camera, controller), or as many live viewers as the profile allows",
+    "507": "not enough space on the disk; nothing partial was left",
 }
 
 
@@ -341,7 +347,8 @@ def document() -> dict[str, Any]:
         f"{tl}/exports": {
             "get": _get("Export files made so far", _json(_ref("ExportList"), "files"), params=[_ID], errors=("404",)),
             "post": _post("Make the exports: CSV of per-frame metrics and one OME-TIFF stack per position",
-                          _json(_ref("ExportList"), "files made"), params=[_ID], status="201", errors=("404",)),
+                          _json(_ref("ExportList"), "files made"), body="ExportRequest", params=[_ID], status="201",
+                          errors=("404", "507")),
         },
         f"{tl}/exports/{{name}}": {"get": _get(
             "Download an export file", _binary("application/octet-stream", "CSV or OME-TIFF"),
@@ -353,7 +360,7 @@ def document() -> dict[str, Any]:
             {"description": "not used: the connection is upgraded"},
             extra={"101": {"description": "switching to the WebSocket protocol"}})},
         f"{P}/session": {"post": _post("Exchange the token for a view cookie (browsers: images and WebSocket)",
-                                       _json(_ref("Session"), "cookie set"))},
+                                       _json(_ref("Session"), "cookie set"), body="SessionRequest")},
         f"{P}/openapi.json": {"get": {"summary": "This document", "security": [],
                                       "responses": {"200": _json({"type": "object"}, "OpenAPI 3.1")}}},
         "/metrics": {"get": _get("Prometheus/OpenMetrics exposition", {
@@ -362,7 +369,7 @@ def document() -> dict[str, Any]:
     for action, what in (("pause", "Pause between positions"), ("resume", "Resume a paused time-lapse"),
                          ("abort", "End a time-lapse for good")):
         paths[f"{tl}/{action}"] = {"post": _post(
-            what, _json(_ref("ControlResult"), "done"), params=[_ID], errors=("404", "409"),
+            what, _json(_ref("ControlResult"), "done"), body="ControlRequest", params=[_ID], errors=("404", "409"),
             extra={"202": _json(_ref("ControlResult"), "requested; takes effect after the position being imaged")})}
     return {
         "openapi": "3.1.0",
