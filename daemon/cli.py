@@ -44,6 +44,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from daemon.memory import return_freed_frames_to_the_system
+
+    return_freed_frames_to_the_system()  # before the first frame: see daemon.memory
     args = build_parser().parse_args(argv)
     try:
         result = args.func(args)

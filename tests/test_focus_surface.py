@@ -77,6 +77,26 @@ def test_surface_recovers_a_tilted_sagging_plate_despite_an_outlier() -> None:
         assert fit.z_um(x, y) == pytest.approx(truth(x, y), abs=1.5)
 
 
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_soft_l1_fit_agrees_with_scipy_least_squares(seed: int) -> None:
+    # Reference: SciPy's least_squares with loss="soft_l1" minimises the same objective
+    # (scipy.optimize.least_squares documentation); the daemon solves it without SciPy.
+    from scipy.optimize import least_squares
+
+    from daemon.focus.surface import soft_l1_fit
+
+    rng = np.random.default_rng(seed)
+    a, b = rng.uniform(-30, 30, 40), rng.uniform(-20, 20, 40)
+    m = np.column_stack([np.ones_like(a), a, b, a * a, a * b, b * b])
+    z = m @ np.array([1500.0, 0.8, -0.5, 0.004, 0.001, 0.004]) + rng.normal(0, 1.0, 40)
+    z[rng.choice(40, 4, replace=False)] += rng.uniform(30, 120, 4)  # debris, bubbles
+    ours = soft_l1_fit(m, z, 10.0)
+    start = np.zeros(6)
+    start[0] = float(np.median(z))
+    ref = least_squares(lambda c: m @ c - z, start, loss="soft_l1", f_scale=10.0, xtol=1e-12, ftol=1e-12, gtol=1e-12).x
+    assert m @ ours == pytest.approx(m @ ref, abs=0.01)
+
+
 def test_surface_model_grows_with_the_points() -> None:
     assert fit_focus_surface([], tolerance_um=10.0) is None
     one = fit_focus_surface([SurfacePoint(0, 0, 100)], tolerance_um=10.0)

@@ -75,8 +75,13 @@ async def test_tracking_follows_drift_with_few_frames() -> None:
     revisits = [r for tp, _, r in results if tp > 0]
     assert all("tracked" in r.message for r in revisits)
     frames = [r.frames for r in revisits]
-    # docs/TARGETS.md asks median <= 4 frames and at most 8; this holds the search to 6 and 8.
-    assert statistics.median(frames) <= 6 and max(frames) <= 8, frames
+    # docs/TARGETS.md: median <= 4 frames, 95th percentile <= 8 (here: every revisit).
+    assert statistics.median(frames) <= 4 and max(frames) <= 8, frames
+    # Most revisits need only the slope check of the predicted plane (2 frames where the
+    # curve is steepest and 1 confirming frame); the rest fall back to the bracket.
+    checked = [r for r in revisits if "slope check" in r.message]
+    assert len(checked) >= len(revisits) // 2, [r.message for r in revisits]
+    assert all(r.frames <= 6 for r in checked), [r.frames for r in checked]
     # The first position was a cold search; later first visits start from the surface.
     firsts = [r for tp, _, r in results if tp == 0]
     assert "cold" in firsts[0].message and all("focus surface" in r.message for r in firsts[1:])
@@ -114,6 +119,26 @@ async def test_tracking_widens_when_the_prediction_is_far_off() -> None:
         result, _ = await visit(scope, tracker, "C6")
     assert result.found and "widened" in result.message, result.message
     assert abs(result.z_um - result.true_z_um) <= d / 4
+
+
+@pytest.mark.parametrize("knock_dof", [1.0, 2.5, -2.5])
+async def test_a_knocked_prediction_is_never_confirmed_out_of_focus(knock_dof: float) -> None:
+    # The remembered plane moved by 1 and 2.5 depths of field: the slope check's frames then
+    # sit on a flank or on a side lobe of the focus curve (about a quarter of the peak's
+    # height 2-3 d out). Whatever it takes, a "found" must be in focus.
+    profile = drifting_profile(**{"sim.focal_plane.drift_um": 0.0})
+    d = profile.optics.depth_of_field_um
+    tracker = FocusTracker(profile)
+    async with sim_scope(profile, speed=SPEED) as scope:
+        await scope.move_to(z_um=profile.focus.nominal_z_um)
+        first, _ = await visit(scope, tracker, "E4")
+        assert first.found
+        t_last, z_last = tracker.keys["E4"].planes[-1]
+        tracker.keys["E4"].planes[-1] = (t_last, z_last + knock_dof * d)
+        result, _ = await visit(scope, tracker, "E4")
+    assert result.found, result.message
+    assert abs(result.z_um - result.true_z_um) <= d / 4, (result.z_um, result.true_z_um, result.message)
+    assert result.frames <= 8 or "widened" in result.message, (result.frames, result.message)
 
 
 async def test_no_focus_keeps_the_predicted_plane_and_the_history() -> None:

@@ -71,6 +71,22 @@ def test_fields_are_generated_lazily_from_a_few_tiles(world: SimWorld) -> None:
 # -- plate ---------------------------------------------------------------------------------
 
 
+def test_the_tile_cache_stays_bounded_across_a_plate_and_redraws_tiles_identically(world: SimWorld) -> None:
+    from drivers.sim.culture import TILE_CACHE
+
+    culture = world.culture
+    x, y = world.well_centre_um("B3")
+    first = culture.sites_in_rect(x - 400, y - 300, x + 400, y + 300)
+    for row in "ABCDEFGH":
+        for col in range(1, 13):
+            cx, cy = world.well_centre_um(f"{row}{col}")
+            culture.sites_in_rect(cx - 400, cy - 300, cx + 400, cy + 300)
+            assert len(culture._tiles) <= TILE_CACHE
+    again = culture.sites_in_rect(x - 400, y - 300, x + 400, y + 300)
+    for name in ("x_um", "y_um", "well", "uni", "nor"):
+        assert np.array_equal(getattr(first, name), getattr(again, name)), name
+
+
 def test_wells_sit_on_the_configured_grid(world: SimWorld) -> None:
     plate = world.sim.plate
     assert world.well_centre_um("A1") == (plate.a1_x_um, plate.a1_y_um)

@@ -20,7 +20,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import ndimage
 
 from daemon.commands.common import (
     add_position_options,
@@ -174,6 +173,7 @@ def _illumination_truth_error(scope: Scope, flat: np.ndarray, dark: np.ndarray) 
     """RMS of (measured shading − simulator's illumination map), both with mean 1. The
     measured shading is smoothed over 7 px first: the map holds the light, the flat also
     the sensor's pixel-to-pixel response (PRNU), which is not an error of the flat."""
+    from scipy import ndimage  # here, not at import: SciPy's image module holds ~27 MB resident
     light = scope.truth.illumination_map()
     if light is None:
         return None

@@ -20,7 +20,6 @@ import math
 from collections.abc import Iterable, Sequence
 
 import numpy as np
-from scipy.optimize import least_squares
 
 # Points needed before each model is trusted: a plane has 3 unknowns, the quadratic 6.
 # Twice the unknowns (common practice for least squares) keeps one bad point from
@@ -38,6 +37,31 @@ LINEAR_REACH_FRACTION = 1.0
 QUADRATIC_REACH_FRACTION = 0.25
 
 KINDS = ("constant", "line", "plane", "quadratic")
+# Iterations of the reweighted fit; each shrinks the step by a constant factor, and the
+# fits here have at most 6 unknowns and a few hundred points.
+IRLS_ITERATIONS = 50
+IRLS_TOLERANCE = 1e-10
+
+
+def soft_l1_fit(m: np.ndarray, z: np.ndarray, scale: float) -> np.ndarray:
+    """Coefficients c minimising Σ ρ((m·c - z)²/scale²) with the smooth ℓ1 loss
+    ρ(u) = 2(√(1+u) - 1), the same objective as SciPy's ``least_squares(loss="soft_l1",
+    f_scale=scale)``, by iteratively reweighted least squares (Holland & Welsch, "Robust
+    regression using iteratively reweighted least-squares", Communications in Statistics
+    - Theory and Methods 6(9):813-827, 1977; from memory): each pass solves the weighted
+    least-squares problem with weights ρ'(u) = 1/√(1+u) of the last residuals. Done
+    here rather than through ``scipy.optimize``, whose import alone holds some 50 MB
+    resident in a daemon that must stay within its memory budget; the tests check the
+    two agree. Units: those of ``z`` (and ``scale``)."""
+    coef = np.linalg.lstsq(m, z, rcond=None)[0]
+    for _ in range(IRLS_ITERATIONS):
+        r = m @ coef - z
+        w = 1.0 / np.sqrt(np.sqrt(1.0 + (r / scale) ** 2))  # square root of the weight
+        new = np.linalg.lstsq(m * w[:, None], z * w, rcond=None)[0]
+        if np.max(np.abs(new - coef)) <= IRLS_TOLERANCE * max(1.0, float(np.max(np.abs(coef)))):
+            return new
+        coef = new
+    return coef
 
 
 @dataclasses.dataclass(frozen=True, slots=True)
@@ -157,7 +181,7 @@ def fit_focus_surface(
     Model (:func:`choose_model`, a and b in mm along the points' principal axes): the
     constant; a line z = c₀ + c₁a; a plane z = c₀ + c₁a + c₂b; or the quadratic
     z = c₀ + c₁a + c₂b + c₃a² + c₄ab + c₅b². The loss is the smooth ℓ1 ("soft_l1") loss
-    of SciPy's ``least_squares`` with scale ``tolerance_um`` (about a depth of field):
+    (:func:`soft_l1_fit`) with scale ``tolerance_um`` (about a depth of field):
     residuals larger than that count linearly, not quadratically, so outliers pull
     little; points more than 3 tolerances off that fit are then dropped, the model chosen
     again for the rest (an outlier may have been all that spread them) and refitted by
@@ -174,9 +198,7 @@ def fit_focus_surface(
     a, b = axes.ab_mm(x, y)
     kind = choose_model(a, b, min_extent_mm)
     m = _terms(kind, a, b)
-    start = np.zeros(m.shape[1])
-    start[0] = float(np.median(z))
-    coef = least_squares(lambda c: m @ c - z, start, loss="soft_l1", f_scale=max(tolerance_um, 1e-6)).x
+    coef = soft_l1_fit(m, z, max(tolerance_um, 1e-6))
     inlier = np.abs(m @ coef - z) <= 3.0 * tolerance_um
     if 0 < inlier.sum() < len(z):
         # The smooth-l1 fit still feels an outlier a little; refit the inliers alone, in

@@ -30,7 +30,6 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import tifffile
-from scipy import ndimage
 
 from daemon import __version__
 from daemon.illumination import CalibrationError
@@ -106,6 +105,7 @@ def frame_statistics(frame: np.ndarray, bit_depth: int) -> dict[str, float]:
 def small_scale_nonuniformity(image: np.ndarray, box_px: int = 7) -> float:
     """Relative std of ``image`` after dividing out its ``box_px`` running mean: what is left
     of a flat once smooth shading is removed (pixel-to-pixel response and any structure)."""
+    from scipy import ndimage  # here, not at import: SciPy's image module holds ~27 MB resident
     f = np.asarray(image, dtype=np.float64)
     smooth = ndimage.uniform_filter(f, size=box_px, mode="nearest")
     valid = smooth > 0

@@ -16,7 +16,6 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
-from scipy import ndimage
 
 from daemon.illumination import CalibrationError
 
@@ -67,6 +66,7 @@ class Corrector:
     def from_frames(
         cls, dark: np.ndarray, flat: np.ndarray, *, min_response_fraction: float = MIN_RESPONSE_FRACTION
     ) -> Corrector:
+        from scipy import ndimage  # here, not at import: SciPy's image module holds ~27 MB resident
         d = _as_float_frame("dark", dark)
         f = _as_float_frame("flat", flat)
         if d.shape != f.shape:

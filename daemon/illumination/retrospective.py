@@ -24,7 +24,6 @@ import dataclasses
 from collections.abc import Iterable
 
 import numpy as np
-from scipy import ndimage
 
 from daemon.illumination import CalibrationError
 
@@ -99,6 +98,7 @@ def fit_surface(
     misfit of the kept blocks, and the RMS of that misfit averaged over
     ``SYSTEMATIC_BOX_BLOCKS`` blocks (its systematic part).
     """
+    from scipy import ndimage  # here, not at import: SciPy's image module holds ~27 MB resident
     h, w = frame_shape
     ny, nx = values.shape
     yy, xx = np.meshgrid(_normalised_grid(ny, block_px, h), _normalised_grid(nx, block_px, w), indexing="ij")

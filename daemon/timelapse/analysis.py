@@ -33,7 +33,10 @@ if TYPE_CHECKING:
 
 log = logging.getLogger(__name__)
 
-ANALYSIS_BACKLOG = 8
+# Each waiting plane holds its frame in memory (a 1280x960 16-bit frame is 2.4 MB, a
+# 1920x1080 one 4 MB): a short queue is enough to overlap analysis with the next
+# positions' motion and exposure, and keeps the daemon within its memory budget.
+ANALYSIS_BACKLOG = 3
 # Alert levels of the culture watch's alert kinds: reaching the passaging confluence is
 # news, the others call for a look.
 INFO_KINDS = (CONFLUENCE_REACHED,)

@@ -17,7 +17,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from skimage.transform import SimilarityTransform
 
 from drivers import atomic
 from drivers.options import ConfigError
@@ -32,6 +31,8 @@ from daemon.vessels.geometry import (
 )
 
 if TYPE_CHECKING:
+    from skimage.transform import SimilarityTransform
+
     from daemon.profile import Profile
 
 STAGE_MAP_DIR = "stage-maps"
@@ -146,6 +147,9 @@ def _estimate_similarity(src: np.ndarray, dst: np.ndarray) -> SimilarityTransfor
     Umeyama, "Least-squares estimation of transformation parameters between two point
     patterns", IEEE TPAMI 13(4), 1991, as implemented by scikit-image. Units: um both sides.
     """
+    # Imported here: scikit-image's transforms bring SciPy's spatial and linear-algebra
+    # modules, which a running daemon needs only when a map is taught.
+    from skimage.transform import SimilarityTransform
     if hasattr(SimilarityTransform, "from_estimate"):
         tf = SimilarityTransform.from_estimate(src, dst)
         return tf if tf else None

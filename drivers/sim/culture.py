@@ -49,6 +49,12 @@ from drivers.sim.config import SimCulture
 from drivers.sim.plate import PlateLayout
 
 TILE_SITES = 16
+# Tiles of lattice sites kept (least recently used dropped). A tile is about 60 KB at the
+# shipped density and a 1280x960 field at 10x needs some 20-40 of them, so this keeps
+# the last few fields (a focus search, the live view and the time point share one) in
+# about 16 MB; a time-lapse over a whole plate would otherwise keep every tile it ever
+# saw. Dropped tiles are drawn again from their own seed, identically.
+TILE_CACHE = 256
 TIME_STEP_S = 10.0
 SITES_PER_CELL_AREA = 2.8  # lattice sites per mean cell area: full occupancy covers ~95 %
 CALIBRATION_PATCH_UM = 900.0
@@ -313,7 +319,7 @@ class Culture:
         i, j = np.meshgrid(np.arange(ti * TILE_SITES, (ti + 1) * TILE_SITES), np.arange(tj * TILE_SITES, (tj + 1) * TILE_SITES))
         sites = self._make_sites(rng, i.ravel(), j.ravel(), well=None)
         self._tiles[key] = sites
-        while len(self._tiles) > 2048:
+        while len(self._tiles) > TILE_CACHE:
             self._tiles.popitem(last=False)
         return sites
 
