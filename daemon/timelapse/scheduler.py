@@ -301,7 +301,7 @@ class Scheduler:
         if step.action == "done":
             await self._set_state(TimelapseState.COMPLETED, finished=True)
         elif step.action == "wait":
-            await self._idle(min(POLL_REAL_S, max(0.0, step.at_s - now) / self.scope.clock.speed))
+            await self._idle(min(POLL_REAL_S, self.scope.clock.real_s_for(step.at_s - now)))
         else:
             await self._run_time_point(step.k)
 
@@ -403,6 +403,13 @@ class Scheduler:
     # -- one time point ----------------------------------------------------------------
 
     async def _run_time_point(self, k: int) -> None:
+        # Held from the first look at the index to the time point's record: on the simulated
+        # scope it then lasts the modelled durations of its moves, settles and exposures,
+        # as the plan check estimates, not the host's computing times the clock's speed.
+        with self.scope.clock.paused():
+            await self._run_time_point_held(k)
+
+    async def _run_time_point_held(self, k: int) -> None:
         planned = timing.planned_s(self.t0_s, self.interval_s, k)
         done = {p["key"] for p in await asyncio.to_thread(self.index.positions, self.id, k)}
         todo = [p for p in self.positions if p.key not in done]

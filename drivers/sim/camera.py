@@ -93,6 +93,9 @@ class SimCamera:
             except ValueError as exc:
                 raise CameraError(f"simulated camera could not render a frame: {exc}") from None
             self.frames_grabbed += 1
+            if hasattr(self._clock, "frames"):
+                # Kept with the clock's state: after a restart the noise goes on, not over.
+                self._clock.frames = self._world.frame_counter
             return Frame(pixels=pixels, t_s=t_start, exposure_ms=exposure_ms, gain_db=gain_db, bit_depth=self._cfg.bit_depth)
 
     def describe(self) -> dict[str, object]:

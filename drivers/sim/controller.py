@@ -59,6 +59,7 @@ for pyserial, the way a udev rule gives a board a stable name.
 from __future__ import annotations
 
 import collections
+import contextlib
 import dataclasses
 import logging
 import math
@@ -529,6 +530,14 @@ class GcodeEmulator:
         ``busy`` is called every ``busy_interval_s`` on the clock while waiting.
         """
         last_busy = self._clock.now()
+        # The mechanics moving is modelled time passing, even while timed work holds the clock.
+        running = getattr(self._clock, "running", None)
+        with running() if running is not None else contextlib.nullcontext():
+            return self._wait_loop(done, epoch, busy, last_busy)
+
+    def _wait_loop(
+        self, done: Callable[[], bool], epoch: int, busy: Callable[[], None] | None, last_busy: float
+    ) -> bool:
         while True:
             with self._lock:
                 if self._epoch != epoch or self._stopping.is_set():
@@ -541,7 +550,7 @@ class GcodeEmulator:
                     last_busy = now
                     busy()
                 next_end = self._queue[0].end_s if self._queue else math.inf
-                wait_s = min(_POLL_S, max(0.0, (next_end - now) / self._clock.speed))
+                wait_s = min(_POLL_S, self._clock.real_s_for(next_end - now))
             self._read_input(wait_s)
 
     def queue_end(self) -> Vec:
