@@ -8,9 +8,10 @@ How simulated time passes (the accelerated clock)
 --------------------------------------------------
 Simulated time runs at ``speed`` times real time. Timed work (a time point, an
 autofocus, a snapshot) holds the clock (:meth:`ScaledClock.held`): while held, simulated
-time passes only during the modelled durations of what the scope does (the holder's own
-waits on the clock: exposure, settle; and moves the simulated controller is carrying out),
-never during the host's computing (rendering, saving, analysis). So a time point lasts
+time passes only by the modelled durations of what the scope does (the holder's own waits
+on the clock: exposure, settle; and the moves the simulated controller carries out, each
+waited out at speed in real time and then counted exactly, :meth:`ScaledClock.model_until`),
+never during the host's computing (rendering, saving, analysis) nor its lateness in waking. So a time point lasts
 what the plan check estimates whatever the speed. The real time the host spent while
 the clock was held is owed to everyone else and paid back afterwards, the clock running
 faster (``CATCH_UP`` times) until it has caught up, so over a run simulated time keeps
@@ -77,6 +78,10 @@ class Clock(Protocol):
         """Hold this clock while the block runs (only a simulated clock can; see ScaledClock.held)."""
         ...
 
+    def released(self) -> contextlib.AbstractContextManager[None]:
+        """Let a held clock run while the block runs (an idle wait inside held work)."""
+        ...
+
     def real_s_for(self, sim_s: float) -> float:
         """Real seconds in which ``sim_s`` of this clock's time will pass at its present rate."""
         ...
@@ -92,6 +97,9 @@ class WallClock:
         await asyncio.sleep(max(0.0, seconds))
 
     def paused(self) -> contextlib.AbstractContextManager[None]:
+        return contextlib.nullcontext()
+
+    def released(self) -> contextlib.AbstractContextManager[None]:
         return contextlib.nullcontext()
 
     def real_s_for(self, sim_s: float) -> float:
@@ -138,7 +146,6 @@ class ScaledClock:
         self._real_s = time.monotonic()
         self._debt_s = 0.0  # simulated seconds owed to the others for host time spent held
         self._hold_depth = 0
-        self._run_depth = 0  # modelled actions in progress while held
         self.dropped_s = 0.0  # simulated seconds the host could not keep up with
         self.save()
 
@@ -149,7 +156,7 @@ class ScaledClock:
         real = time.monotonic()
         dt = max(0.0, real - self._real_s)
         self._real_s = real
-        if self._hold_depth and not self._run_depth:
+        if self._hold_depth:
             self._debt_s += dt * self.speed
             cap = MAX_DEBT_REAL_S * self.speed
             if self._debt_s > cap:
@@ -178,7 +185,7 @@ class ScaledClock:
         """Simulated seconds per real second right now."""
         with self._lock:
             self._update()
-            if self._hold_depth and not self._run_depth:
+            if self._hold_depth:
                 return 0.0
             if not self._hold_depth and self._debt_s > 0.0:
                 return self.speed * (1.0 + CATCH_UP)
@@ -220,17 +227,33 @@ class ScaledClock:
     paused = held  # the name the Clock protocol uses
 
     @contextlib.contextmanager
-    def running(self) -> Iterator[None]:
-        """Let simulated time pass while a modelled action (a move, a dwell) is in progress."""
+    def released(self) -> Iterator[None]:
+        """Inside :meth:`held`: let the clock run for the block (the holder waits idle)."""
         with self._lock:
             self._update()
-            self._run_depth += 1
+            depth, self._hold_depth = self._hold_depth, 0
         try:
             yield
         finally:
             with self._lock:
                 self._update()
-                self._run_depth -= 1
+                self._hold_depth = depth
+
+    def is_held(self) -> bool:
+        with self._lock:
+            return self._hold_depth > 0
+
+    def model_until(self, t_s: float) -> None:
+        """While held: a modelled action (a move, a dwell) ends at ``t_s``; its simulated
+        time passes exactly, once the caller has waited it out in real time (which was
+        counted as owed meanwhile, so it is not owed twice)."""
+        with self._lock:
+            self._update()
+            if not self._hold_depth:
+                return
+            jump = max(0.0, t_s - self._sim_s)
+            self._sim_s += jump
+            self._debt_s = max(0.0, self._debt_s - jump)
 
     def _holds_here(self) -> bool:
         return _HOLDER.get() is self
@@ -246,15 +269,19 @@ class ScaledClock:
 
     async def sleep(self, seconds: float) -> None:
         """Sleep ``seconds`` of simulated time. The holder's own sleeps are modelled time
-        (exposure, settle) and pass even while the clock is held."""
-        target = self.now() + max(0.0, seconds)
-        ctx = self.running() if self._holds_here() else contextlib.nullcontext()
-        with ctx:
-            while True:
-                left = target - self.now()
-                if left <= 0.0:
-                    return
-                await asyncio.sleep(min(_SLEEP_STEP_REAL_S, self.real_s_for(left)) if left > 1e-9 else 0.0)
+        (exposure, settle): while held they pass exactly, after waiting them out at speed."""
+        seconds = max(0.0, seconds)
+        if self._holds_here() and self.is_held():
+            target = self.now() + seconds
+            await asyncio.sleep(seconds / self.speed)
+            self.model_until(target)
+            return
+        target = self.now() + seconds
+        while True:
+            left = target - self.now()
+            if left <= 0.0:
+                return
+            await asyncio.sleep(min(_SLEEP_STEP_REAL_S, self.real_s_for(left)))
 
     @staticmethod
     def saved_state(state_file: Path) -> dict[str, Any] | None:

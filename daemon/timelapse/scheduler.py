@@ -272,6 +272,14 @@ class Scheduler:
 
     async def run(self) -> TimelapseState:
         """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
+        # The whole run holds the scope's clock but for its idle waits (_idle): on the simulated
+        # scope the bookkeeping between time points is then no time either, and time points
+        # start on their planned time at any speed (drivers.clock).
+        with self.scope.clock.paused():
+            await self._run_held()
+        return self.state
+
+    async def _run_held(self) -> None:
         await self._prepare()
         try:
             async with self.analysis.running():
@@ -286,7 +294,6 @@ class Scheduler:
                 await self.analysis.drain()
         finally:
             await self._save_resume_state(watch=True)
-        return self.state
 
     async def _step(self) -> None:
         now = self.scope.clock.now()
@@ -301,13 +308,20 @@ class Scheduler:
         if step.action == "done":
             await self._set_state(TimelapseState.COMPLETED, finished=True)
         elif step.action == "wait":
-            await self._idle(min(POLL_REAL_S, self.scope.clock.real_s_for(step.at_s - now)))
+            with self.scope.clock.released():
+                real_s = self.scope.clock.real_s_for(step.at_s - now)
+            if real_s <= POLL_REAL_S:
+                # The last stretch is waited out holding the clock, which then reads the planned
+                # time exactly: on a fast simulated clock a late wake-up would be seconds late.
+                await self.scope.clock.sleep(step.at_s - now)
+            else:
+                await self._idle(min(POLL_REAL_S, real_s / 2.0))
         else:
             await self._run_time_point(step.k)
 
     async def _idle(self, real_s: float) -> None:
         self._wake.clear()
-        with contextlib.suppress(asyncio.TimeoutError):
+        with self.scope.clock.released(), contextlib.suppress(asyncio.TimeoutError):
             await asyncio.wait_for(self._wake.wait(), timeout=max(real_s, 0.0))
 
     async def _prepare(self) -> None:

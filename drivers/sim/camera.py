@@ -15,7 +15,7 @@ from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 from drivers.base import CameraError, Frame, Position
-from drivers.camera_common import EXPOSURE_RANGE_MS, GAIN_RANGE_DB, check_exposure_ms, check_gain_db
+from drivers.camera_common import EXPOSURE_RANGE_MS, FRAME_READOUT_S, GAIN_RANGE_DB, check_exposure_ms, check_gain_db
 from drivers.clock import Clock
 from drivers.options import ConfigError
 from drivers.registry import CameraContext, CameraDriver
@@ -75,7 +75,8 @@ class SimCamera:
         async with self._grab_lock:
             exposure_ms, gain_db = self._exposure_ms, self._gain_db
             t_start = self._clock.now()
-            await self._clock.sleep(exposure_ms / 1000.0)
+            # The frame arrives after its exposure and the sensor's read-out, as from a real camera.
+            await self._clock.sleep(exposure_ms / 1000.0 + FRAME_READOUT_S)
             pos = self._position_source()
             lamp = float(self._lamp_source())
             try:

@@ -59,7 +59,6 @@ for pyserial, the way a udev rule gives a board a stable name.
 from __future__ import annotations
 
 import collections
-import contextlib
 import dataclasses
 import logging
 import math
@@ -530,14 +529,11 @@ class GcodeEmulator:
         ``busy`` is called every ``busy_interval_s`` on the clock while waiting.
         """
         last_busy = self._clock.now()
-        # The mechanics moving is modelled time passing, even while timed work holds the clock.
-        running = getattr(self._clock, "running", None)
-        with running() if running is not None else contextlib.nullcontext():
-            return self._wait_loop(done, epoch, busy, last_busy)
-
-    def _wait_loop(
-        self, done: Callable[[], bool], epoch: int, busy: Callable[[], None] | None, last_busy: float
-    ) -> bool:
+        # While timed work holds the clock, a move is waited out at speed in real time and
+        # then its modelled end is counted exactly (drivers.clock), however late we woke.
+        model_until = getattr(self._clock, "model_until", None)
+        is_held = getattr(self._clock, "is_held", None)
+        held_end, held_deadline = math.nan, 0.0
         while True:
             with self._lock:
                 if self._epoch != epoch or self._stopping.is_set():
@@ -550,7 +546,16 @@ class GcodeEmulator:
                     last_busy = now
                     busy()
                 next_end = self._queue[0].end_s if self._queue else math.inf
-                wait_s = min(_POLL_S, self._clock.real_s_for(next_end - now))
+                if model_until is not None and is_held is not None and math.isfinite(next_end) and is_held():
+                    if next_end != held_end:
+                        held_end, held_deadline = next_end, time.monotonic() + (next_end - now) / self._clock.speed
+                    left_real = held_deadline - time.monotonic()
+                    if left_real <= 0.0:
+                        model_until(next_end)
+                        continue
+                    wait_s = min(_POLL_S, left_real)
+                else:
+                    wait_s = min(_POLL_S, self._clock.real_s_for(next_end - now))
             self._read_input(wait_s)
 
     def queue_end(self) -> Vec:
