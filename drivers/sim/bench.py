@@ -92,11 +92,15 @@ def open_stage(ctx: StageContext) -> StageBuild:
         illumination=profile.illumination,
         clock=clock,
     )
+    def stop() -> None:
+        emulator.stop()
+        clock.save()  # with the frame count, so the noise goes on after a restart
+
     return StageBuild(
         motion=motion,
         clock=clock,
         truth=SimTruth(world, emulator),
-        stop=emulator.stop,
+        stop=stop,
         bench=SimBench(world=world, emulator=emulator, lamp_channel=profile.illumination.channel),
     )
 
