@@ -337,12 +337,26 @@ def run_show(args: argparse.Namespace) -> int:
         print_json(report)
         return 0
     print(f"time-lapse {tl['id']} '{tl['name']}': {tl['state']}" + (f" ({tl['stop_reason']})" if tl["stop_reason"] else ""))
-    for p in report["time_point_list"]:
+    # Time points are numbered from 1 for people, as in the progress lines (tp + 1).
+    points = report["time_point_list"]
+    i = 0
+    while i < len(points):
+        p = points[i]
+        if p["status"] == TimePointState.MISSED:
+            j = i
+            while j + 1 < len(points) and points[j + 1]["status"] == TimePointState.MISSED \
+                    and points[j + 1]["reason"] == p["reason"] and points[j + 1]["tp"] == points[j]["tp"] + 1:
+                j += 1
+            span = f"{p['tp'] + 1:>4}" if j == i else f"{p['tp'] + 1} to {points[j]['tp'] + 1} ({j - i + 1})"
+            print(f"  time point {span}: missed   planned {clock_text(p['planned_s'])} - {p['reason']}")
+            i = j + 1
+            continue
         late = "" if p["started_s"] is None else f" {p['started_s'] - p['planned_s']:+.1f} s"
         why = f" - {p['reason']}" if p["reason"] else ""
-        print(f"  time point {p['tp']:>4}: {p['status']:<8} planned {clock_text(p['planned_s'])}{late}, {p['n_ok']} ok, {p['n_failed']} failed{why}")
+        print(f"  time point {p['tp'] + 1:>4}: {p['status']:<8} planned {clock_text(p['planned_s'])}{late}, {p['n_ok']} ok, {p['n_failed']} failed{why}")
+        i += 1
     for p in report["failed_positions"]:
-        print(f"  position {p['key']} at time point {p['tp']}: {p['status']} - {p['reason']}")
+        print(f"  position {p['key']} at time point {p['tp'] + 1}: {p['status']} - {p['reason']}")
     for a in report["alerts"]:
         print(f"  alert {a['level']} {clock_text(a['t_s'])}: {a['message']}")
     return 0
