@@ -104,6 +104,10 @@ class ExportsMade:
     files: list[ExportFile]
 
 
+# Rows of each list in a time-lapse's detail: its answer stays small on any run.
+DETAIL_ROWS = 50
+
+
 def inside(root: Path, rel: str | Path) -> Path:
     """``root / rel`` resolved, refused unless it stays inside ``root`` (no way out of the data folder)."""
     base = root.resolve()
@@ -148,38 +152,42 @@ class Archive:
         """Every time-lapse with its time points over and missed (the state as indexed)."""
         rows = []
         for row in self.index.timelapses():
-            points = self.index.time_points(row["id"])
+            counts = self.index.time_point_counts(row["id"])
             rows.append({
                 "id": row["id"], "name": row["name"], "state": row["state"],
                 "profile": row["profile_name"], "t0_s": row["t0_s"], "interval_s": row["interval_s"],
                 "count": row["count"], "positions": row["n_positions"],
-                "time_points_over": sum(p["status"] != TimePointState.RUNNING for p in points),
-                "missed": sum(p["status"] == TimePointState.MISSED for p in points), "stop_reason": row["stop_reason"],
+                "time_points_over": sum(n for st, n in counts.items() if st != TimePointState.RUNNING),
+                "missed": counts.get(TimePointState.MISSED, 0), "stop_reason": row["stop_reason"],
             })
         return rows
 
     def detail(self, tl_id: int) -> dict[str, Any]:
-        """One time-lapse as indexed: plan, time points (missed ones with why), failed
-        positions, alerts, and the latest frame of every position."""
+        """One time-lapse as indexed: plan, time point counts, missed time points as ranges,
+        the latest time points, failed positions and alerts, and the latest frame of every
+        position. Bounded whatever the run's length: counts, ranges and the latest few rows
+        (``DETAIL_ROWS``); the frames are paged at ``/frames``."""
         row = self.timelapse(tl_id)
-        points = self.index.time_points(tl_id)
-        frames = self.index.frames(tl_id)
-        statuses = {st: sum(p["status"] == st for p in points) for st in ("done", "partial", "failed", "missed", "running")}
+        counts = self.index.time_point_counts(tl_id)
+        statuses = {st: counts.get(st, 0) for st in ("done", "partial", "failed", "missed", "running")}
         over = statuses["done"] + statuses["partial"] + statuses["failed"] + statuses["missed"]
+        n_frames, not_ok = self.index.frame_counts(tl_id)
         spec = json.loads(row["plan_json"])
+        ranges = self.index.missed_ranges(tl_id, DETAIL_ROWS + 1)
         return {
             "id": tl_id, "name": row["name"], "state": row["state"], "stop_reason": row["stop_reason"],
             "profile": row["profile_name"], "t0_s": row["t0_s"], "created_s": row["created_s"],
             "finished_s": row["finished_s"], "interval_s": row["interval_s"], "count": row["count"],
             "positions": [p["key"] for p in spec.get("positions", [])], "plan": spec.get("plan"),
             "time_points": statuses, "progress_ratio": over / row["count"] if row["count"] else 0.0,
-            "frames": len(frames), "frames_not_ok": sum(f["status"] != FrameState.OK for f in frames),
-            "missed": [{"tp": p["tp"], "planned_s": p["planned_s"], "reason": p["reason"]}
-                       for p in points if p["status"] == TimePointState.MISSED],
-            "time_point_list": points[-200:],
-            "failed_positions": [p for p in self.index.positions(tl_id) if p["status"] != PositionState.OK][-100:],
-            "alerts": self.index.alerts(tl_id)[-200:],
-            "latest": latest_per_position(frames),
+            "frames": n_frames, "frames_not_ok": not_ok,
+            # Runs of consecutive missed time points with one reason; the latest DETAIL_ROWS.
+            "missed": ranges[-DETAIL_ROWS:], "missed_ranges_left_out": len(ranges) > DETAIL_ROWS,
+            "time_point_list": self.index.recent_time_points(tl_id, DETAIL_ROWS),
+            "failed_positions": self.index.recent_failed_positions(tl_id, DETAIL_ROWS),
+            "alerts": self.index.recent_alerts(tl_id, DETAIL_ROWS),
+            # A position not imaged in the last two time points with frames shows no latest frame here.
+            "latest": latest_per_position(self.index.recent_frames(tl_id, 2)),
         }
 
     # -- frames --------------------------------------------------------------------------

@@ -29,6 +29,7 @@ import cv2
 import numpy as np
 
 from drivers.base import Frame, HardwareError
+from drivers.clock import untimed
 from drivers.options import option
 
 if TYPE_CHECKING:
@@ -282,8 +283,10 @@ class LiveView:
                 await self._adopt_others_frame()
             else:
                 try:
-                    async with scope.claim(LIVE_HOLDER):
-                        frame = await scope.capture()
+                    # Untimed: rendering a live frame costs the simulated clock nothing.
+                    with untimed():
+                        async with scope.claim(LIVE_HOLDER, timed=False):
+                            frame = await scope.capture()
                         self._seen_captures = scope.frames_captured
                     await self._publish(frame, "live")
                     self.last_error = None

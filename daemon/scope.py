@@ -13,7 +13,7 @@ from collections.abc import AsyncIterator, Callable
 from typing import TYPE_CHECKING, Any
 
 from drivers.base import Camera, Frame, MotionController, Position, PositionUnknownError
-from drivers.clock import Clock
+from drivers.clock import Clock, is_untimed
 from drivers.truth import GroundTruth, NoTruth
 
 if TYPE_CHECKING:
@@ -82,14 +82,21 @@ class Scope:
         await self.stop()
 
     @contextlib.asynccontextmanager
-    async def claim(self, holder: str) -> AsyncIterator[Scope]:
-        """Hold the hardware for one job (``holder`` is shown to anyone refused meanwhile)."""
-        async with self.lock:
-            self.holder = holder
-            try:
-                yield self
-            finally:
-                self.holder = None
+    async def claim(self, holder: str, *, timed: bool = True) -> AsyncIterator[Scope]:
+        """Hold the hardware for one job (``holder`` is shown to anyone refused meanwhile).
+
+        A timed job (everything but live view) also holds the scope's clock, from its wait
+        for the hardware to its end: on the simulated scope only the modelled durations of
+        what it does (moves, settle, exposure) then pass, not the host's computing nor the
+        live frame it waited for (:mod:`drivers.clock`). Live view claims untimed.
+        """
+        with self.clock.paused() if timed and not is_untimed() else contextlib.nullcontext():
+            async with self.lock:
+                self.holder = holder
+                try:
+                    yield self
+                finally:
+                    self.holder = None
 
     async def move_to(
         self, x_um: float | None = None, y_um: float | None = None, z_um: float | None = None

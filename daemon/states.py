@@ -19,6 +19,11 @@ class TimelapseState(StrEnum):
     STOPPED = "stopped"  # by storage: disk full, I/O error, free-space reserve reached
 
 
+# Why a run of an unfinished time-lapse ended, as kept on it until it resumes: a shutdown
+# asked for (Ctrl-C, SIGTERM, systemctl stop) is the user's; anything else is an interruption.
+STOPPED_BY_USER = "stopped by the user"
+INTERRUPTED = "interrupted (a crash or a power cut)"
+
 # A time-lapse in one of these can be resumed (after a restart) or paused/aborted.
 UNFINISHED_STATES = (TimelapseState.RUNNING, TimelapseState.PAUSED)
 

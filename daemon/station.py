@@ -353,6 +353,7 @@ class Station:
 
     def _plan_and_positions(self, options: PlanOptions) -> tuple[Plan, list[PlannedPosition], list[str], dict[str, Any]]:
         from daemon.timelapse.plan import check_fits, estimate_plan, field_of_view_um, plan_from_options, plan_positions
+        from daemon.timelapse.timing import describe_rule, late_tolerance_s
         from daemon.vessels.stage_map import load_stage_map
 
         if options.vessel_file:
@@ -369,6 +370,8 @@ class Station:
             "travel_s": round(est.travel_s, 2), "frames_per_time_point": est.frames_per_time_point,
             "bytes_per_time_point": est.bytes_per_time_point, "duration_s": plan.duration_s,
             "summary": est.summary(),
+            "late_tolerance_s": late_tolerance_s(plan.interval_s),
+            "lateness_rule": describe_rule(plan.interval_s),
         }
         return plan, positions, warnings, estimate
 
@@ -438,10 +441,8 @@ class Station:
         s = self.scheduler
         if s is None:
             return None
-        counts: dict[str, int] = {}
-        for p in self.index.time_points(s.id):
-            if p["status"] != TimePointState.RUNNING:
-                counts[p["status"]] = counts.get(p["status"], 0) + 1
+        # Counted in the index: a run of millions of time points reads no more than a short one.
+        counts = {st: n for st, n in self.index.time_point_counts(s.id).items() if st != TimePointState.RUNNING}
         over = sum(counts.values())
         return {"id": s.id, "state": s.state, "ratio": over / s.count if s.count else 0.0, "time_points": counts}
 

@@ -16,6 +16,10 @@ import numpy as np
 from drivers.base import CameraError
 from drivers.sections import EXPOSURE_RANGE_MS, GAIN_RANGE_DB
 
+# Read-out of a frame after its exposure on a USB/board camera (about one frame at 30 fps;
+# common practice). The simulated camera takes it; the plan estimate counts it.
+FRAME_READOUT_S = 1.0 / 30.0
+
 
 def _check_range(
     value: float, *, what: str, unit: str, option: str, full: tuple[float, float],

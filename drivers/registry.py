@@ -90,6 +90,7 @@ class OfflineTruthContext:
 
     profile: HardwareSections
     frame_shape: tuple[int, int] | None = None  # (height, width) of the frames to judge
+    data_dir: Path | None = None  # the data folder the frames were taken into (driver state)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -176,10 +177,12 @@ def sim_section() -> type:
     return SimConfig
 
 
-def offline_truth(profile: HardwareSections, *, frame_shape: tuple[int, int] | None = None) -> GroundTruth:
+def offline_truth(
+    profile: HardwareSections, *, frame_shape: tuple[int, int] | None = None, data_dir: Path | None = None
+) -> GroundTruth:
     """Ground truth for frames saved on this profile's scope: :class:`NoTruth` unless the
     stage driver knows it (the simulated stage rebuilds its world from the profile)."""
     build = stage_driver(profile.stage.driver).offline_truth
     if build is None:
         return NoTruth()
-    return build(OfflineTruthContext(profile=profile, frame_shape=frame_shape))
+    return build(OfflineTruthContext(profile=profile, frame_shape=frame_shape, data_dir=data_dir))

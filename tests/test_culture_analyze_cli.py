@@ -14,6 +14,7 @@ from daemon.commands.snap import write_tiff
 from drivers.base import Frame
 from drivers.sim.world import SimWorld
 from tests.helpers import sim_profile
+from tests.web_support import small_profile
 
 
 @pytest.fixture(scope="module")
@@ -23,7 +24,8 @@ def sim_frames(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     world = SimWorld(sim_profile(320, 240))
     folder = tmp_path_factory.mktemp("frames")
     (folder / "sub").mkdir()
-    out: dict[str, object] = {"folder": folder}
+    # The profile the CLI reads the truth from, its seeding date pinned as the frames' is.
+    out: dict[str, object] = {"folder": folder, "profile": str(small_profile(tmp_path_factory.mktemp("profile")))}
     for name, well, day in (("c4-day2", "C4", 2.0), ("c4-day5", "C4", 5.0)):
         x, y = world.well_centre_um(well)
         t = world.t0_s + day * 86400.0
@@ -38,7 +40,7 @@ def sim_frames(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
 def test_folder_as_json_with_overlays(sim_frames: dict[str, object], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     folder: Path = sim_frames["folder"]  # type: ignore[assignment]
     overlays = tmp_path / "overlays"
-    assert main(["analyze", str(folder), "--json", "--overlay", str(overlays)]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(folder), "--json", "--overlay", str(overlays)]) == 0
     rows = {Path(r["file"]).relative_to(folder).as_posix(): r for r in json.loads(capsys.readouterr().out)}
     assert set(rows) == {"c4-day2.tif", "c4-day5.tif", "sub/c4-day5.png"}
     for name in ("c4-day2", "c4-day5"):
@@ -60,7 +62,7 @@ def test_folder_as_json_with_overlays(sim_frames: dict[str, object], tmp_path: P
             assert row["cell_count"] is None and row["count_note"]
     assert (overlays / "sub" / "c4-day5-overlay.png").exists()
     # Overlays written into the analysed folder are not analysed on the next run.
-    assert main(["analyze", str(folder), "--json", "--overlay", str(folder)]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(folder), "--json", "--overlay", str(folder)]) == 0
     assert len(json.loads(capsys.readouterr().out)) == 3
 
 
@@ -69,22 +71,22 @@ def test_json_names_the_method_and_another_can_be_chosen(sim_frames: dict[str, o
 
     folder: Path = sim_frames["folder"]  # type: ignore[assignment]
     frame = str(folder / "c4-day5.tif")
-    assert main(["analyze", frame, "--json"]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), frame, "--json"]) == 0
     (row,) = json.loads(capsys.readouterr().out)
     assert row["method"] == DEFAULT_METHOD and row["method_description"] == METHOD_DESCRIPTIONS[DEFAULT_METHOD]
-    assert main(["analyze", frame, "--json", "--method", JACCARD_2014]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), frame, "--json", "--method", JACCARD_2014]) == 0
     (other,) = json.loads(capsys.readouterr().out)
     assert other["method"] == JACCARD_2014 and "as published" in other["method_description"]
     # Both read the same frame close to the simulator's truth.
     assert abs(other["confluence"] - row["simulator_confluence"]) <= 0.10
     with pytest.raises(SystemExit):
-        main(["analyze", frame, "--method", "otsu"])
+        main(["analyze", "--profile", str(sim_frames["profile"]), frame, "--method", "otsu"])
     assert "invalid choice" in capsys.readouterr().err
 
 
 def test_single_file_as_text(sim_frames: dict[str, object], capsys: pytest.CaptureFixture[str]) -> None:
     folder: Path = sim_frames["folder"]  # type: ignore[assignment]
-    assert main(["analyze", str(folder / "c4-day2.tif")]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(folder / "c4-day2.tif")]) == 0
     text = capsys.readouterr().out
     from daemon.culture.confluence import DEFAULT_METHOD
 
@@ -102,11 +104,11 @@ def test_unreadable_file_is_reported_and_the_rest_analysed(sim_frames: dict[str,
     folder: Path = sim_frames["folder"]  # type: ignore[assignment]
     (tmp_path / "broken.tif").write_bytes(b"this is not a TIFF")
     (tmp_path / "good.tif").write_bytes((folder / "c4-day2.tif").read_bytes())
-    assert main(["analyze", str(tmp_path), "--json"]) == 1
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(tmp_path), "--json"]) == 1
     captured = capsys.readouterr()
     assert len(json.loads(captured.out)) == 1
     assert "broken.tif" in captured.err and "Traceback" not in captured.err
-    assert main(["analyze", str(tmp_path / "broken.tif")]) == 2
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(tmp_path / "broken.tif")]) == 2
 
 
 def test_empty_folder_and_bad_pixel_size(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -122,9 +124,9 @@ def test_colour_file_and_bad_profile(sim_frames: dict[str, object], tmp_path: Pa
     gray = cv2.imread(str(folder / "c4-day5.tif"), cv2.IMREAD_UNCHANGED)
     cv2.imwrite(str(tmp_path / "gray.png"), gray)
     cv2.imwrite(str(tmp_path / "colour.png"), cv2.cvtColor(gray, cv2.COLOR_GRAY2BGR))
-    assert main(["analyze", str(tmp_path), "--json"]) == 0
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(tmp_path), "--json"]) == 0
     rows = {Path(r["file"]).name: r for r in json.loads(capsys.readouterr().out)}
     assert rows["colour.png"]["confluence"] == rows["gray.png"]["confluence"]
-    assert main(["analyze", str(tmp_path), "--profile", "no-such-scope"]) == 2
+    assert main(["analyze", "--profile", str(sim_frames["profile"]), str(tmp_path), "--profile", "no-such-scope"]) == 2
     err = capsys.readouterr().err
     assert "no such profile" in err and "Traceback" not in err

@@ -65,7 +65,8 @@ def test_run_list_show_and_export(tmp_path: Path, small_profile: Path, capsys: p
 
     assert main(["timelapse", "show", "1", "--data", str(data)]) == 0
     shown = capsys.readouterr().out
-    assert "time point    0: done" in shown and "time point    1: done" in shown
+    # Numbered from 1 for people, as the progress lines are.
+    assert "time point    1: done" in shown and "time point    2: done" in shown and "time point    0" not in shown
 
     out_dir = tmp_path / "export"
     assert main(["export", "1", "--data", str(data), "--output", str(out_dir), "--stacks"]) == 0
@@ -170,3 +171,43 @@ def test_pause_and_resume_commands(tmp_path: Path, small_profile: Path, capsys: 
                  "--sim-speed", "2000", "--quiet"]) == 0
     with open_index(data) as index:
         assert index.timelapse(1)["state"] == "completed"
+
+
+def test_ctrl_c_is_stopped_by_the_user_and_the_printed_hint_resumes_at_the_saved_speed(
+    tmp_path: Path, small_profile: Path
+) -> None:
+    """Ctrl-C (SIGINT) leaves the time-lapse unfinished, recorded as stopped by the user; the
+    printed hint is exactly what to type, and resuming keeps the simulated clock's speed."""
+    import shlex
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    data = tmp_path / "data"
+    plan = _plan(tmp_path, interval=600, count=3)
+    cmd = [sys.executable, "-m", "daemon.cli", "timelapse", "start", str(plan), "--profile", str(small_profile),
+           "--data", str(data), "--sim-speed", "20"]
+    proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    deadline = time.monotonic() + 120
+    lines: list[str] = []
+    assert proc.stdout is not None
+    for line in proc.stdout:  # bounded: the process ends on SIGINT or by itself
+        lines.append(line)
+        if any(f"time point 1/3 {end}" in line for end in ("done", "partial", "failed")):
+            proc.send_signal(signal.SIGINT)
+        if time.monotonic() > deadline:
+            proc.kill()
+            break
+    assert proc.wait(30) == 0, "".join(lines)
+    hint = next(ln for ln in lines if "continue it with:" in ln)
+    assert "stopped by the user" in hint
+    typed = shlex.split(hint.split("continue it with:", 1)[1])
+    assert typed[:3] == ["phasewatch", "timelapse", "resume"] and "--sim-speed" not in typed
+    index = open_index(data)
+    try:
+        assert index.timelapse(1)["stop_reason"] == "stopped by the user"
+    finally:
+        index.close()
+    saved = json.loads((data / "sim-clock.json").read_text())
+    assert saved["speed"] == 20.0  # what resume goes on at, as no --sim-speed is typed

@@ -175,3 +175,34 @@ async def test_no_path_outside_the_data_folder_can_be_read(tmp_path):
         async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl}/frames/{frame_id}"), headers=srv.auth) as r:
             assert r.status == 404
             assert "outside the data folder" not in await r.text()
+
+
+STATUS_LIMIT_BYTES = 64 * 1024
+
+
+async def test_a_ten_million_point_plan_keeps_every_status_answer_small(tmp_path):
+    """interval_s = 1, count = 10 000 000 at high speed, with a day's downtime on the way:
+    the time-lapse's detail, the status and /metrics stay under 64 KB (counts, missed ranges,
+    the latest rows), however many time points the index holds."""
+    plan = {**QUICK_PLAN, "name": "KVL-7 every second", "wells": ["B2"], "interval_s": 1, "count": 10_000_000,
+            "autofocus": "off"}
+    async with served(tmp_path, speed=5000.0) as srv:
+        tl = (await _start(srv, plan))["id"]
+        index = srv.station.index
+        assert await wait_for(lambda: index.time_point_counts(tl).get("done", 0) >= 3, timeout_s=60)
+        # A day without the scope (as after a power cut): about 86 400 time points missed at once.
+        srv.station.scope.clock.advance(86_400.0)
+        assert await wait_for(lambda: index.time_point_counts(tl).get("missed", 0) >= 86_000, timeout_s=60)
+        assert await wait_for(lambda: index.time_point_counts(tl).get("done", 0) >= 60, timeout_s=60)
+        for path in (f"/api/v1/timelapses/{tl}", "/api/v1/status", "/api/v1/timelapses", "/metrics"):
+            async with srv.session.get(srv.u(path), headers=srv.auth) as r:
+                body = await r.read()
+                assert r.status == 200, (path, body[:200])
+                assert len(body) < STATUS_LIMIT_BYTES, (path, len(body))
+        d = await _detail(srv, tl)
+        assert d["time_points"]["missed"] >= 86_000
+        big = [m for m in d["missed"] if m["count"] >= 86_000]
+        assert big and big[0]["last_tp"] - big[0]["first_tp"] + 1 == big[0]["count"]
+        assert len(d["time_point_list"]) <= 50
+        async with srv.session.post(srv.u(f"/api/v1/timelapses/{tl}/abort"), headers=srv.auth, json={}) as r:
+            assert r.status in (200, 202)

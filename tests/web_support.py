@@ -179,6 +179,8 @@ def small_profile(folder: Path, width_px: int = 320, height_px: int = 240) -> Pa
     """hw_profiles/sim.toml with a small frame (fast rendering), written into ``folder``."""
     text = (PROFILE_DIR / "sim.toml").read_text()
     text = text.replace("width_px = 1280", f"width_px = {width_px}").replace("height_px = 960", f"height_px = {height_px}")
+    # A pinned seeding date, as the tests' profiles have (the shipped default is 'now').
+    text = text.replace("[sim]\n", '[sim]\nstart_time = "2026-03-02T09:00:00+00:00"\n', 1)
     path = folder / f"sim-{width_px}x{height_px}.toml"
     path.write_text(text)
     return path

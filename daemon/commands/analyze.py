@@ -27,6 +27,7 @@ from daemon.culture.confluence import DEFAULT_METHOD, METHODS, confluence, overl
 from daemon.culture.counting import count_cells
 from daemon.profile import Profile, load_profile
 from drivers import atomic
+from drivers.options import ConfigError
 from drivers.registry import offline_truth
 from drivers.truth import GroundTruth
 
@@ -144,9 +145,10 @@ class FrameTruth:
     the truth is rebuilt once per frame size so that its field is the frame's.
     """
 
-    def __init__(self, profile: Profile) -> None:
+    def __init__(self, profile: Profile, data_dir: Path | None = None) -> None:
         self.profile = profile
-        self._by_shape: dict[tuple[int, int], GroundTruth] = {}
+        self.data_dir = data_dir  # where the simulated scope kept its clock (its seeding date)
+        self._by_shape: dict[tuple[int, int], GroundTruth | None] = {}
 
     def coverage(self, info: FrameInfo) -> float | None:
         if info.x_um is None or info.y_um is None or info.t_s is None:
@@ -157,10 +159,14 @@ class FrameTruth:
         h, w = info.pixels.shape
         if min(h, w) < 16:  # smaller than any camera a profile allows
             return None
-        truth = self._by_shape.get((h, w))
-        if truth is None:
-            truth = self._by_shape[(h, w)] = offline_truth(self.profile, frame_shape=(h, w))
-        return truth.field_coverage(info.x_um, info.y_um, info.t_s)
+        if (h, w) not in self._by_shape:
+            try:
+                self._by_shape[(h, w)] = offline_truth(self.profile, frame_shape=(h, w), data_dir=self.data_dir)
+            except ConfigError:
+                # A simulated plate seeded 'now' whose data folder is not above the frames: no truth.
+                self._by_shape[(h, w)] = None
+        truth = self._by_shape[(h, w)]
+        return None if truth is None else truth.field_coverage(info.x_um, info.y_um, info.t_s)
 
 
 def analyze_frame(path: Path, info: FrameInfo, *, pixel_size_um: float, overlay_dir: Path | None,
@@ -210,7 +216,9 @@ def _describe(row: dict[str, object]) -> str:
 def analyze_all(args: argparse.Namespace) -> tuple[list[dict[str, object]], list[str]]:
     files = find_images(args.path)
     profile = load_profile(args.profile)
-    truth = FrameTruth(profile)
+    start = args.path.resolve()
+    data_dir = next((d for d in (start, *start.parents) if (d / "sim-clock.json").is_file()), None)
+    truth = FrameTruth(profile, data_dir)
     rows: list[dict[str, object]] = []
     problems: list[str] = []
     root = args.path if args.path.is_dir() else args.path.parent

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import math
 import sys
 from pathlib import Path
@@ -306,6 +307,10 @@ async def run_retro(args: argparse.Namespace) -> int:
 
 def _retro_truth_error(profile: Profile, shape: np.ndarray) -> float | None:
     # The map is the profile's full frame: a flat of another size is a crop, not comparable.
+    sim = profile.sim
+    if sim is not None and getattr(sim, "start_time", None) == "now":
+        # The lamp's map does not depend on when the plate was seeded: any fixed date will do.
+        profile = dataclasses.replace(profile, sim=dataclasses.replace(sim, start_time="2026-01-01T00:00:00+00:00"))  # type: ignore[type-var]
     light = offline_truth(profile).illumination_map()
     if light is None:
         return None

@@ -2,9 +2,11 @@
 
 ``start PLAN`` checks the plan against the scope (positions inside the stage limits, the
 time per time point against the interval), then runs it with a progress display.
-Ctrl-C (or SIGTERM) stops this process but leaves the time-lapse unfinished, so that
-``resume`` (or the daemon) continues it; time points whose slots pass meanwhile are
-recorded as missed. ``pause`` and ``abort`` act on a time-lapse running in another
+Ctrl-C (or SIGTERM) stops this process but leaves the time-lapse unfinished, recorded as
+stopped by the user, so that ``resume`` (or ``phasewatch serve``) continues it; time
+points that pass meanwhile are recorded as missed (see :mod:`daemon.timelapse.timing`),
+a run that ended otherwise is recorded as interrupted. ``resume`` keeps the simulated
+clock's speed unless ``--sim-speed`` is given. ``pause`` and ``abort`` act on a time-lapse running in another
 process through the data folder's index.
 """
 
@@ -15,6 +17,7 @@ import asyncio
 import contextlib
 import datetime as dt
 import logging
+import shlex
 import signal
 import sys
 from collections.abc import Iterator
@@ -25,6 +28,7 @@ from daemon.commands.common import add_profile_options, print_json
 from daemon.events import Event
 from daemon.states import (
     ENDED_TIME_POINT_STATES,
+    STOPPED_BY_USER,
     UNFINISHED_STATES,
     FrameState,
     PositionState,
@@ -150,7 +154,12 @@ class ProgressDisplay:
             )
 
 
-async def _run_scheduler(scheduler: Any, display: ProgressDisplay, data_dir: Path) -> int:
+def resume_command(profile_arg: str, data_dir: Path) -> str:
+    """What to type to go on with a time-lapse left unfinished (the clock keeps its speed)."""
+    return f"phasewatch timelapse resume --profile {shlex.quote(profile_arg)} --data {shlex.quote(str(data_dir))}"
+
+
+async def _run_scheduler(scheduler: Any, display: ProgressDisplay, data_dir: Path, profile_arg: str) -> int:
     loop = asyncio.get_running_loop()
     for sig in (signal.SIGINT, signal.SIGTERM):
         loop.add_signal_handler(sig, scheduler.shutdown)
@@ -161,8 +170,8 @@ async def _run_scheduler(scheduler: Any, display: ProgressDisplay, data_dir: Pat
             loop.remove_signal_handler(sig)
     if state in UNFINISHED_STATES:
         print(
-            f"time-lapse {scheduler.id} left {state}; continue it with: "
-            f"phasewatch timelapse resume --profile {scheduler.profile.name} --data {data_dir}"
+            f"time-lapse {scheduler.id} left {state} ({STOPPED_BY_USER}); continue it with: "
+            f"{resume_command(profile_arg, data_dir)}"
         )
         return 0
     if state == TimelapseState.STOPPED:
@@ -210,6 +219,7 @@ async def run_start(args: argparse.Namespace) -> int:
     from daemon.profile import load_profile
     from daemon.timelapse.plan import check_fits, estimate_plan, field_of_view_um, load_plan, plan_positions
     from daemon.timelapse.resume import open_data_folder, run_lock
+    from daemon.timelapse.timing import describe_rule
     from daemon.timelapse.scheduler import Scheduler
     from daemon.vessels.stage_map import load_stage_map
 
@@ -221,6 +231,7 @@ async def run_start(args: argparse.Namespace) -> int:
     warnings = check_fits(profile, plan, positions)
     estimate = estimate_plan(profile, plan, positions)
     print(f"plan '{plan.name}': {estimate.summary()}")
+    print(f"  late or missed: {describe_rule(plan.interval_s)}")
     print(f"  {plan.count} time points every {plan.interval_s:g} s; about {estimate.bytes_per_time_point / 1e6:.1f} MB per time point")
     if plan.autofocus == "off" and profile.stage.home_on_connect:
         warnings = [*warnings, (
@@ -239,7 +250,7 @@ async def run_start(args: argparse.Namespace) -> int:
                 tl = unfinished[-1]
                 print(
                     f"phasewatch: {args.data} has an unfinished time-lapse {tl['id']} '{tl['name']}' ({tl['state']}); "
-                    f"resume it (phasewatch timelapse resume --data {args.data}) or abort it "
+                    f"resume it ({resume_command(args.profile, args.data)}) or abort it "
                     f"(phasewatch timelapse abort {tl['id']} --data {args.data}) first",
                     file=sys.stderr,
                 )
@@ -250,7 +261,7 @@ async def run_start(args: argparse.Namespace) -> int:
                     scope, plan, args.data, index, positions, reserve_mb=args.reserve_mb,
                     warnings=warnings, on_event=display,
                 )
-                return await _run_scheduler(scheduler, display, args.data)
+                return await _run_scheduler(scheduler, display, args.data, args.profile)
         finally:
             index.close()
 
@@ -273,7 +284,7 @@ async def run_resume(args: argparse.Namespace) -> int:
             display = ProgressDisplay(quiet=args.quiet)
             async with scope:
                 scheduler = resume_scheduler(scope, args.data, index, row, on_event=display, unpause=True)
-                return await _run_scheduler(scheduler, display, args.data)
+                return await _run_scheduler(scheduler, display, args.data, args.profile)
         finally:
             index.close()
 
@@ -332,12 +343,26 @@ def run_show(args: argparse.Namespace) -> int:
         print_json(report)
         return 0
     print(f"time-lapse {tl['id']} '{tl['name']}': {tl['state']}" + (f" ({tl['stop_reason']})" if tl["stop_reason"] else ""))
-    for p in report["time_point_list"]:
+    # Time points are numbered from 1 for people, as in the progress lines (tp + 1).
+    points = report["time_point_list"]
+    i = 0
+    while i < len(points):
+        p = points[i]
+        if p["status"] == TimePointState.MISSED:
+            j = i
+            while j + 1 < len(points) and points[j + 1]["status"] == TimePointState.MISSED \
+                    and points[j + 1]["reason"] == p["reason"] and points[j + 1]["tp"] == points[j]["tp"] + 1:
+                j += 1
+            span = f"{p['tp'] + 1:>4}" if j == i else f"{p['tp'] + 1} to {points[j]['tp'] + 1} ({j - i + 1})"
+            print(f"  time point {span}: missed   planned {clock_text(p['planned_s'])} - {p['reason']}")
+            i = j + 1
+            continue
         late = "" if p["started_s"] is None else f" {p['started_s'] - p['planned_s']:+.1f} s"
         why = f" - {p['reason']}" if p["reason"] else ""
-        print(f"  time point {p['tp']:>4}: {p['status']:<8} planned {clock_text(p['planned_s'])}{late}, {p['n_ok']} ok, {p['n_failed']} failed{why}")
+        print(f"  time point {p['tp'] + 1:>4}: {p['status']:<8} planned {clock_text(p['planned_s'])}{late}, {p['n_ok']} ok, {p['n_failed']} failed{why}")
+        i += 1
     for p in report["failed_positions"]:
-        print(f"  position {p['key']} at time point {p['tp']}: {p['status']} - {p['reason']}")
+        print(f"  position {p['key']} at time point {p['tp'] + 1}: {p['status']} - {p['reason']}")
     for a in report["alerts"]:
         print(f"  alert {a['level']} {clock_text(a['t_s'])}: {a['message']}")
     return 0

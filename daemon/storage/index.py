@@ -413,6 +413,58 @@ class Index:
     def time_points(self, tl_id: int) -> list[dict[str, Any]]:
         return self._all("SELECT * FROM time_points WHERE timelapse_id = ? ORDER BY tp", (tl_id,))
 
+    # Bounded reads for status answers: counts and the latest rows, never a whole run.
+
+    def time_point_counts(self, tl_id: int) -> dict[str, int]:
+        """Time points of a time-lapse by status."""
+        rows = self._all("SELECT status, COUNT(*) AS n FROM time_points WHERE timelapse_id = ? GROUP BY status", (tl_id,))
+        return {r["status"]: int(r["n"]) for r in rows}
+
+    def recent_time_points(self, tl_id: int, limit: int) -> list[dict[str, Any]]:
+        """The ``limit`` latest time points, oldest first."""
+        rows = self._all("SELECT * FROM time_points WHERE timelapse_id = ? ORDER BY tp DESC LIMIT ?", (tl_id, limit))
+        return rows[::-1]
+
+    def missed_ranges(self, tl_id: int, limit: int) -> list[dict[str, Any]]:
+        """Missed time points as runs of consecutive ones with the same reason (the ``limit``
+        latest, oldest first): first_tp, last_tp, count, planned_s of the first, reason."""
+        rows = self._all(
+            "SELECT MIN(tp) AS first_tp, MAX(tp) AS last_tp, COUNT(*) AS count, MIN(planned_s) AS planned_s, reason"
+            " FROM (SELECT tp, planned_s, reason, tp - ROW_NUMBER() OVER (PARTITION BY reason ORDER BY tp) AS run"
+            "       FROM time_points WHERE timelapse_id = ? AND status = ?)"
+            " GROUP BY reason, run ORDER BY first_tp DESC LIMIT ?",
+            (tl_id, TimePointState.MISSED, limit),
+        )
+        return rows[::-1]
+
+    def frame_counts(self, tl_id: int) -> tuple[int, int]:
+        """(frames indexed, of which not ok)."""
+        row = self._one(
+            "SELECT COUNT(*) AS n, COALESCE(SUM(status != ?), 0) AS bad FROM frames WHERE timelapse_id = ?",
+            (FrameState.OK, tl_id),
+        )
+        return (int(row["n"]), int(row["bad"])) if row else (0, 0)
+
+    def recent_frames(self, tl_id: int, time_points: int) -> list[dict[str, Any]]:
+        """Frames of the ``time_points`` latest time points that have frames."""
+        return self._all(
+            "SELECT * FROM frames WHERE timelapse_id = ? AND tp >= COALESCE("
+            " (SELECT MIN(tp) FROM (SELECT DISTINCT tp FROM frames WHERE timelapse_id = ? ORDER BY tp DESC LIMIT ?)), 0)"
+            " ORDER BY tp, key, z_index, kind",
+            (tl_id, tl_id, time_points),
+        )
+
+    def recent_alerts(self, tl_id: int, limit: int) -> list[dict[str, Any]]:
+        rows = self._all("SELECT * FROM alerts WHERE timelapse_id = ? ORDER BY id DESC LIMIT ?", (tl_id, limit))
+        return rows[::-1]
+
+    def recent_failed_positions(self, tl_id: int, limit: int) -> list[dict[str, Any]]:
+        rows = self._all(
+            "SELECT * FROM positions WHERE timelapse_id = ? AND status != ? ORDER BY rowid DESC LIMIT ?",
+            (tl_id, PositionState.OK, limit),
+        )
+        return rows[::-1]
+
     def time_point(self, tl_id: int, tp: int) -> dict[str, Any] | None:
         return self._one("SELECT * FROM time_points WHERE timelapse_id = ? AND tp = ?", (tl_id, tp))
 

@@ -34,6 +34,7 @@ from daemon.focus.metrics import DEFAULT_METRIC, METRICS
 from drivers.options import ConfigError, load_section, option, section
 from daemon.vessels.geometry import Vessel, VesselError, Well, get_vessel, parse_wells
 from daemon.vessels.stage_map import StageMap, sim_vessel_name
+from drivers.camera_common import FRAME_READOUT_S
 from drivers.gcode.dialect import trapezoid_duration_s
 
 if TYPE_CHECKING:
@@ -54,9 +55,6 @@ TRACK_SEARCH_RANGE_UM = 40.0
 SOFTWARE_S_PER_SAVED_FRAME = 0.030
 # Focus score on an autofocus frame (a metric on a full frame, no write).
 SOFTWARE_S_PER_FOCUS_FRAME = 0.008
-# Read-out of a frame after its exposure on a USB/board camera (about one frame at 30 fps;
-# common practice).
-FRAME_READOUT_S = 1.0 / 30.0
 # Gap between neighbouring sites as a fraction of the field: sites never overlap, so no
 # patch of cells is lit twice per time point.
 SITE_GAP_FRACTION = 0.1
@@ -422,7 +420,8 @@ def _autofocus_s(profile: Profile, frames: int, range_um: float) -> float:
     f = profile.focus
     step = range_um / max(frames - 1, 1)
     approach = 2.0 * _z_step_s(profile, f.backlash_um * 1.5 + range_um / 2)
-    per_frame = _z_step_s(profile, step) + _frame_s_for_focus(profile) + SOFTWARE_S_PER_FOCUS_FRAME
+    software_s = 0.0 if profile.sim is not None else SOFTWARE_S_PER_FOCUS_FRAME
+    per_frame = _z_step_s(profile, step) + _frame_s_for_focus(profile) + software_s
     return approach + frames * per_frame
 
 
@@ -443,7 +442,8 @@ def _breakdown(profile: Profile, plan: Plan, travel_um: float, cold: bool) -> di
         "z_approach_s": 2.0 * _z_step_s(profile, f.backlash_um * 1.5),
         "exposure_s": frames * _frame_s(profile, plan),
         "z_stack_s": (frames - 1) * _z_step_s(profile, plan.z_stack.step_um) if plan.z_stack else 0.0,
-        "software_s": frames * saved_per_frame * SOFTWARE_S_PER_SAVED_FRAME,
+        # The simulated scope holds its clock while the host computes (drivers.clock): no scope time.
+        "software_s": 0.0 if profile.sim is not None else frames * saved_per_frame * SOFTWARE_S_PER_SAVED_FRAME,
     }
     if plan.autofocus != "off":
         if cold:

@@ -37,7 +37,9 @@ from typing import TYPE_CHECKING, Any
 from daemon import events as ev
 from daemon.events import Event
 from daemon.states import (
+    INTERRUPTED,
     STOP_REQUESTS,
+    STOPPED_BY_USER,
     UNFINISHED_STATES,
     PositionState,
     Request,
@@ -64,7 +66,9 @@ log = logging.getLogger(__name__)
 
 # Real seconds between looks for pause/abort requests from other processes while waiting.
 POLL_REAL_S = 0.2
-MISSED_DOWN = "the daemon was not running"
+MISSED_DOWN = "phasewatch was not running"
+# Missed time points are written to the index this many at a time.
+MISSED_CHUNK = 10_000
 MISSED_OVERRUN = "the previous time point ran into this one's slot"
 MISSED_PAUSED = "the time-lapse was paused"
 
@@ -130,7 +134,12 @@ class Scheduler:
         self._request: str | None = None  # a Request, or what another process posted
         self._shutdown = False
         self._wake = asyncio.Event()
-        self._miss_reason = MISSED_DOWN if resumed else MISSED_OVERRUN
+        self._miss_reason = MISSED_OVERRUN
+        if resumed:
+            # A shutdown asked for (Ctrl-C, SIGTERM, systemctl stop) left its mark; anything else
+            # that ended the last run was a crash or a power cut.
+            why = (index.timelapse(timelapse_id) or {}).get("stop_reason")
+            self._miss_reason = f"{MISSED_DOWN}: {STOPPED_BY_USER if why == STOPPED_BY_USER else INTERRUPTED}"
         self._next_k, self._open_k = self._progress_from_index()
 
     # -- construction ------------------------------------------------------------------
@@ -233,6 +242,8 @@ class Scheduler:
             await self._set_state(TimelapseState.ABORTED, "aborted by request", finished=True)
         elif request == Request.SHUTDOWN:
             self._shutdown = True
+            if self.state == TimelapseState.RUNNING:
+                await self._set_state(TimelapseState.RUNNING, STOPPED_BY_USER)
 
     async def _interrupted(self) -> bool:
         """Checked between positions: a request (here or from another process) that ends
@@ -272,6 +283,14 @@ class Scheduler:
 
     async def run(self) -> TimelapseState:
         """Run until completed, aborted, stopped (storage) or shut down; returns the state."""
+        # The whole run holds the scope's clock but for its idle waits (_idle): on the simulated
+        # scope the bookkeeping between time points is then no time either, and time points
+        # start on their planned time at any speed (drivers.clock).
+        with self.scope.clock.paused():
+            await self._run_held()
+        return self.state
+
+    async def _run_held(self) -> None:
         await self._prepare()
         try:
             async with self.analysis.running():
@@ -286,7 +305,6 @@ class Scheduler:
                 await self.analysis.drain()
         finally:
             await self._save_resume_state(watch=True)
-        return self.state
 
     async def _step(self) -> None:
         now = self.scope.clock.now()
@@ -294,20 +312,27 @@ class Scheduler:
             if self._open_k < self.count and timing.slot_open(self._open_k, self.t0_s, self.interval_s, now):
                 await self._run_time_point(self._open_k)
                 return
-            await self._close_open_time_point("interrupted: " + self._miss_reason)
+            await self._close_open_time_point(self._miss_reason)
         step = timing.next_step(self._next_k, self.count, self.t0_s, self.interval_s, now)
         if step.missed:
             await self._record_missed(step.missed)
         if step.action == "done":
             await self._set_state(TimelapseState.COMPLETED, finished=True)
         elif step.action == "wait":
-            await self._idle(min(POLL_REAL_S, max(0.0, step.at_s - now) / self.scope.clock.speed))
+            with self.scope.clock.released():
+                real_s = self.scope.clock.real_s_for(step.at_s - now)
+            if real_s <= POLL_REAL_S:
+                # The last stretch is waited out holding the clock, which then reads the planned
+                # time exactly: on a fast simulated clock a late wake-up would be seconds late.
+                await self.scope.clock.sleep(step.at_s - now)
+            else:
+                await self._idle(min(POLL_REAL_S, real_s / 2.0))
         else:
             await self._run_time_point(step.k)
 
     async def _idle(self, real_s: float) -> None:
         self._wake.clear()
-        with contextlib.suppress(asyncio.TimeoutError):
+        with self.scope.clock.released(), contextlib.suppress(asyncio.TimeoutError):
             await asyncio.wait_for(self._wake.wait(), timeout=max(real_s, 0.0))
 
     async def _prepare(self) -> None:
@@ -329,6 +354,9 @@ class Scheduler:
             kinds=kinds, corrector=corrector, analysis_plane=self.plan.analysis_plane,
         )
         resumed = bool(await asyncio.to_thread(self.index.time_points, self.id))
+        if resumed and self.state == TimelapseState.RUNNING:
+            # Running again: should this run end without a shutdown, it was interrupted.
+            await asyncio.to_thread(self.index.set_state, self.id, TimelapseState.RUNNING, reason=None)
         if not resumed:
             # Time point 0 is planned for when acquisition can really begin, not for when
             # the plan was recorded: on a fast simulated clock the set-up above is hours.
@@ -351,17 +379,28 @@ class Scheduler:
     def kinds(self) -> tuple[str, ...]:
         return self.processor.kinds if self.processor is not None else ("raw",)
 
-    async def _record_missed(self, missed: tuple[int, ...]) -> None:
-        items = [(k, timing.planned_s(self.t0_s, self.interval_s, k)) for k in missed]
-        await asyncio.to_thread(self.index.record_missed, self.id, items, self._miss_reason)
-        self._next_k = max(self._next_k, missed[-1] + 1)
-        for k, planned in items:
-            self._publish(ev.TimePointEvent(
-                type="time_point", timelapse_id=self.id, tp=k, status=TimePointState.MISSED, planned_s=planned,
-                reason=self._miss_reason,
-            ))
-        span = f"{missed[0]}" + (f"..{missed[-1]}" if len(missed) > 1 else "")
-        await self._alert("warning", "missed", f"{len(missed)} time point(s) missed ({span}): {self._miss_reason}")
+    async def _record_missed(self, missed: tuple[int, int] | tuple[()]) -> None:
+        """Record the time points ``first..last`` (both included) as missed.
+
+        In the index one row each, written in bounded chunks; to listeners one event per
+        range (the last one's), however many there are, so a long downtime on a short
+        interval floods nothing."""
+        if not missed:
+            return
+        first, last = missed
+        for lo in range(first, last + 1, MISSED_CHUNK):
+            hi = min(last, lo + MISSED_CHUNK - 1)
+            items = [(k, timing.planned_s(self.t0_s, self.interval_s, k)) for k in range(lo, hi + 1)]
+            await asyncio.to_thread(self.index.record_missed, self.id, items, self._miss_reason)
+        self._next_k = max(self._next_k, last + 1)
+        n = last - first + 1
+        self._publish(ev.TimePointEvent(
+            type="time_point", timelapse_id=self.id, tp=last, status=TimePointState.MISSED,
+            planned_s=timing.planned_s(self.t0_s, self.interval_s, last),
+            reason=self._miss_reason if n == 1 else f"{self._miss_reason} ({n} time points, {first + 1} to {last + 1})",
+        ))
+        span = f"{first + 1}" + (f" to {last + 1}" if n > 1 else "")
+        await self._alert("warning", "missed", f"{n} time point(s) missed ({span}): {self._miss_reason}")
 
     async def _close_open_time_point(self, reason: str) -> None:
         k = self._open_k
@@ -403,6 +442,13 @@ class Scheduler:
     # -- one time point ----------------------------------------------------------------
 
     async def _run_time_point(self, k: int) -> None:
+        # Held from the first look at the index to the time point's record: on the simulated
+        # scope it then lasts the modelled durations of its moves, settles and exposures,
+        # as the plan check estimates, not the host's computing times the clock's speed.
+        with self.scope.clock.paused():
+            await self._run_time_point_held(k)
+
+    async def _run_time_point_held(self, k: int) -> None:
         planned = timing.planned_s(self.t0_s, self.interval_s, k)
         done = {p["key"] for p in await asyncio.to_thread(self.index.positions, self.id, k)}
         todo = [p for p in self.positions if p.key not in done]
@@ -414,7 +460,7 @@ class Scheduler:
             why = f"free-space reserve reached: {space.message}"
             if self._open_k is None:
                 self._miss_reason = why
-                await self._record_missed((k,))
+                await self._record_missed((k, k))
             await self._stop_for_storage(why)
             return
         started = self.scope.clock.now()

@@ -62,13 +62,19 @@ def open_stage(ctx: StageContext) -> StageBuild:
     profile = ctx.profile
     sim = _sim_section(profile)
     world = SimWorld(profile)
-    speed = ctx.sim_speed if ctx.sim_speed is not None else sim.clock_speed  # type: ignore[attr-defined]
-    if not speed > 0:
-        raise ConfigError(profile.path, "sim", "clock_speed", f"--sim-speed must be > 0, got {speed}")
+    # The speed the clock was saved with goes on unless one is given (--sim-speed).
     state_file = ctx.data_dir / SIM_CLOCK_FILE if ctx.data_dir is not None else None
-    clock = ScaledClock(
-        speed, start_s=world.t0_s + sim.culture_age_h * 3600.0, state_file=state_file  # type: ignore[attr-defined]
-    )
+    saved = ScaledClock.saved_state(state_file) if state_file is not None else None
+    speed = ctx.sim_speed if ctx.sim_speed is not None else (None if saved else sim.clock_speed)  # type: ignore[attr-defined]
+    if speed is not None and not speed > 0:
+        raise ConfigError(profile.path, "sim", "clock_speed", f"--sim-speed must be > 0, got {speed}")
+    age_s = sim.culture_age_h * 3600.0  # type: ignore[attr-defined]
+    clock = ScaledClock(speed, start_s=world.t0_s + age_s, state_file=state_file)
+    if sim.start_time == "now":  # type: ignore[attr-defined]
+        # Seeded culture_age_h before the clock first started; the same world on every restart.
+        world.t0_s = clock.world.setdefault("seeded_s", world.t0_s)
+        clock.save()
+    world.frame_counter = clock.frames
     # Power on over well A1, as a plate put in by hand would sit.
     plate, focal = sim.plate, sim.focal_plane  # type: ignore[attr-defined]
     start = Position(plate.a1_x_um, plate.a1_y_um, focal.z0_um - PARKED_BELOW_FOCUS_UM)
@@ -88,24 +94,42 @@ def open_stage(ctx: StageContext) -> StageBuild:
         illumination=profile.illumination,
         clock=clock,
     )
+    def stop() -> None:
+        emulator.stop()
+        clock.save()  # with the frame count, so the noise goes on after a restart
+
     return StageBuild(
         motion=motion,
         clock=clock,
         truth=SimTruth(world, emulator),
-        stop=emulator.stop,
+        stop=stop,
         bench=SimBench(world=world, emulator=emulator, lamp_channel=profile.illumination.channel),
     )
 
 
 def offline_truth(ctx: OfflineTruthContext) -> SimTruth:
-    """The world rebuilt from the profile (same seed, same culture), framed like the frames."""
+    """The world rebuilt from the profile (same seed, same culture), framed like the frames.
+
+    With ``[sim] start_time = "now"`` the seeding time is read from the data folder's
+    clock state, where the simulated stage fixed it."""
     profile = ctx.profile
-    _sim_section(profile)
+    sim = _sim_section(profile)
     if ctx.frame_shape is not None:
         h, w = ctx.frame_shape
         camera = dataclasses.replace(profile.camera, width_px=w, height_px=h)
         profile = dataclasses.replace(profile, camera=camera)  # type: ignore[type-var]
-    return SimTruth(SimWorld(profile))
+    world = SimWorld(profile)
+    if sim.start_time == "now":  # type: ignore[attr-defined]
+        saved = ScaledClock.saved_state(ctx.data_dir / SIM_CLOCK_FILE) if ctx.data_dir is not None else None
+        seeded = (saved or {}).get("world", {}).get("seeded_s")
+        if seeded is None:
+            raise ConfigError(
+                profile.path, "sim", "start_time",
+                "is 'now': the seeding time is kept in the data folder's clock state; give the data folder "
+                "the frames were taken into, or set an ISO 8601 start_time",
+            )
+        world.t0_s = float(seeded)
+    return SimTruth(world)
 
 
 DRIVER = StageDriver(

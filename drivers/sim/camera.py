@@ -15,7 +15,7 @@ from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 from drivers.base import CameraError, Frame, Position
-from drivers.camera_common import EXPOSURE_RANGE_MS, GAIN_RANGE_DB, check_exposure_ms, check_gain_db
+from drivers.camera_common import EXPOSURE_RANGE_MS, FRAME_READOUT_S, GAIN_RANGE_DB, check_exposure_ms, check_gain_db
 from drivers.clock import Clock
 from drivers.options import ConfigError
 from drivers.registry import CameraContext, CameraDriver
@@ -75,7 +75,8 @@ class SimCamera:
         async with self._grab_lock:
             exposure_ms, gain_db = self._exposure_ms, self._gain_db
             t_start = self._clock.now()
-            await self._clock.sleep(exposure_ms / 1000.0)
+            # The frame arrives after its exposure and the sensor's read-out, as from a real camera.
+            await self._clock.sleep(exposure_ms / 1000.0 + FRAME_READOUT_S)
             pos = self._position_source()
             lamp = float(self._lamp_source())
             try:
@@ -93,6 +94,9 @@ class SimCamera:
             except ValueError as exc:
                 raise CameraError(f"simulated camera could not render a frame: {exc}") from None
             self.frames_grabbed += 1
+            if hasattr(self._clock, "frames"):
+                # Kept with the clock's state: after a restart the noise goes on, not over.
+                self._clock.frames = self._world.frame_counter
             return Frame(pixels=pixels, t_s=t_start, exposure_ms=exposure_ms, gain_db=gain_db, bit_depth=self._cfg.bit_depth)
 
     def describe(self) -> dict[str, object]:

@@ -159,7 +159,11 @@ class SimFaults:
 class SimConfig:
     seed: int = option(20261201, doc="seed: the same seed gives the same culture and noise")
     clock_speed: float = option(1.0, doc="simulated seconds per real second", min=0.001, max=1e7)
-    start_time: str = option("2026-03-02T09:00:00+00:00", doc="simulated time the plate was seeded (ISO 8601)")
+    start_time: str = option(
+        "now",
+        doc="simulated time the plate was seeded (ISO 8601), or 'now': culture_age_h before the real time "
+        "the simulated clock first starts (kept in the data folder's clock state)",
+    )
     culture_age_h: float = option(
         48.0, doc="age of the culture (hours after start_time) when the simulated clock first starts", min=0.0, max=10000.0, unit="h"
     )

@@ -611,6 +611,11 @@ class GcodeEmulator:
         ``busy`` is called every ``busy_interval_s`` on the clock while waiting.
         """
         last_busy = self._clock.now()
+        # While timed work holds the clock, a move is waited out at speed in real time and
+        # then its modelled end is counted exactly (drivers.clock), however late we woke.
+        model_until = getattr(self._clock, "model_until", None)
+        is_held = getattr(self._clock, "is_held", None)
+        held_end, held_deadline = math.nan, 0.0
         while True:
             with self._lock:
                 if self._epoch != epoch or self._stopping.is_set():
@@ -623,7 +628,16 @@ class GcodeEmulator:
                     last_busy = now
                     busy()
                 next_end = self._queue[0].end_s if self._queue else math.inf
-                wait_s = min(_POLL_S, max(0.0, (next_end - now) / self._clock.speed))
+                if model_until is not None and is_held is not None and math.isfinite(next_end) and is_held():
+                    if next_end != held_end:
+                        held_end, held_deadline = next_end, time.monotonic() + (next_end - now) / self._clock.speed
+                    left_real = held_deadline - time.monotonic()
+                    if left_real <= 0.0:
+                        model_until(next_end)
+                        continue
+                    wait_s = min(_POLL_S, left_real)
+                else:
+                    wait_s = min(_POLL_S, self._clock.real_s_for(next_end - now))
             self._read_input(wait_s)
 
     def queue_end(self) -> Vec:

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import math
 import threading
+import time
 from collections import OrderedDict
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING
@@ -76,11 +77,12 @@ class SimWorld:
         self.sim = sim
         self.seed = sim.seed
         try:
-            self.t0_s = parse_start_time(sim.start_time)
+            # 'now': the seeding time is fixed when the simulated clock first starts (see the sim stage).
+            self.t0_s = (time.time() - sim.culture_age_h * 3600.0) if sim.start_time == "now" else parse_start_time(sim.start_time)
         except ValueError:
             raise ConfigError(
                 profile.path, "sim", "start_time",
-                f"must be an ISO 8601 time such as 2026-03-02T09:00:00+00:00, got {sim.start_time!r}",
+                f"must be 'now' or an ISO 8601 time such as 2026-03-02T09:00:00+00:00, got {sim.start_time!r}",
             ) from None
         try:
             self.plate = PlateLayout(sim.plate)
