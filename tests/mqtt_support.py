@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import getpass
 import json
 import shutil
 import socket
@@ -24,13 +25,18 @@ def free_port() -> int:
 class Broker:
     """``mosquitto -c CONF`` listening on 127.0.0.1:PORT only, anonymous (tests only)."""
 
-    def __init__(self, folder: Path, port: int | None = None) -> None:
+    def __init__(self, folder: Path, port: int | None = None, *, extra_conf: str = "") -> None:
+        """``extra_conf``: more configuration lines (credentials, access list); anonymous
+        clients are let in unless it says otherwise."""
         self.folder = folder
         self.port = port or free_port()
         self.conf = folder / f"mosquitto-{self.port}.conf"
+        anonymous = "" if "allow_anonymous" in extra_conf else "allow_anonymous true\n"
+        # Run as whoever runs the tests (mosquitto started as root would switch to its own
+        # user, who cannot read the test's password and access files).
         self.conf.write_text(
-            f"listener {self.port} {LOOPBACK}\nallow_anonymous true\npersistence false\n"
-            "log_dest stderr\nlog_type error\nlog_type warning\n"
+            f"user {getpass.getuser()}\nlistener {self.port} {LOOPBACK}\n{anonymous}persistence false\n"
+            f"log_dest stderr\nlog_type error\nlog_type warning\n{extra_conf}"
         )
         self.log = (folder / f"mosquitto-{self.port}.log").open("w")
         self.proc: subprocess.Popen[bytes] | None = None
@@ -63,10 +69,16 @@ class Broker:
         self.log.close()
 
 
-def subscribe(port: int, topic: str, *, count: int, wait_s: float) -> list[tuple[str, str]]:
+def credentials(user: str | None, password: str | None) -> list[str]:
+    return [] if user is None else ["-u", user, "-P", password or ""]
+
+
+def subscribe(port: int, topic: str, *, count: int, wait_s: float, user: str | None = None,
+              password: str | None = None) -> list[tuple[str, str]]:
     """``mosquitto_sub -v -C count -W wait_s``: up to ``count`` (topic, payload) pairs, retained ones first."""
     proc = subprocess.run(
-        [MOSQUITTO_SUB, "-h", LOOPBACK, "-p", str(port), "-t", topic, "-v", "-C", str(count), "-W", str(int(wait_s))],
+        [MOSQUITTO_SUB, "-h", LOOPBACK, "-p", str(port), "-t", topic, "-v", "-C", str(count), "-W", str(int(wait_s)),
+         *credentials(user, password)],
         capture_output=True, timeout=wait_s + 10,
     )
     out = []
@@ -76,11 +88,13 @@ def subscribe(port: int, topic: str, *, count: int, wait_s: float) -> list[tuple
     return out
 
 
-def wait_json(port: int, topic: str, predicate: Any, *, timeout_s: float) -> dict[str, Any] | None:
+def wait_json(port: int, topic: str, predicate: Any, *, timeout_s: float, user: str | None = None,
+              password: str | None = None) -> dict[str, Any] | None:
     """Subscribe again and again until the retained JSON of ``topic`` satisfies ``predicate``."""
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
-        got = subscribe(port, topic, count=1, wait_s=max(1.0, min(3.0, deadline - time.monotonic())))
+        got = subscribe(port, topic, count=1, wait_s=max(1.0, min(3.0, deadline - time.monotonic())), user=user,
+                        password=password)
         if got:
             payload = json.loads(got[0][1])
             if predicate(payload):

@@ -5,9 +5,11 @@ a broker that is away at start, the fleet view, and the site file's strict optio
 from __future__ import annotations
 
 import json
+import re
 import signal
 import subprocess
 import time
+import urllib.request
 
 import pytest
 
@@ -186,3 +188,78 @@ def test_a_broker_away_at_start_neither_stops_the_time_lapse_nor_loses_the_state
         d.stop()
         if broker is not None:
             broker.close()
+
+
+def readme_acl() -> str:
+    """The access list the README's lab network section recommends, as written there."""
+    text = (REPO / "README.md").read_text()
+    block = text[text.index("      # every scope:"):]
+    block = block[: block.index("topic read phasewatch/#") + len("topic read phasewatch/#")]
+    return "\n".join(line.strip() for line in block.splitlines()) + "\n"
+
+
+def test_readme_access_list_with_passwords_and_the_fleet_page(tmp_path):
+    passwd = tmp_path / "passwd"
+    users = {"incubator-6": "p6-quartz-7", "incubator-7": "p7-basalt-2", "fleet-viewer": "fv-slate-9"}
+    for i, (user, pw) in enumerate(users.items()):
+        subprocess.run(["mosquitto_passwd", "-b", *(["-c"] if i == 0 else []), str(passwd), user, pw], check=True,
+                       timeout=20)
+    (tmp_path / "acl").write_text(readme_acl())
+    broker = Broker(tmp_path, extra_conf=f"allow_anonymous false\npassword_file {passwd}\nacl_file {tmp_path / 'acl'}\n")
+    pw_file = tmp_path / "mqtt-password"
+    pw_file.write_text(users["incubator-6"] + "\n")
+    pw_file.chmod(0o600)
+    folder = tmp_path / "scope"
+    folder.mkdir()
+    site = tmp_path / "site.toml"
+    site.write_text(f'[mqtt]\nurl = "{broker.url}"\nusername = "incubator-6"\npassword_file = "{pw_file}"\n'
+                    'scope_name = "incubator-6"\nkeepalive_s = 2\n')
+    d = Daemon(folder, folder / "data", extra=("--sim-speed", "1000", "--site", str(site)))
+    fleet_page = None
+    viewer = {"user": "fleet-viewer", "password": users["fleet-viewer"]}
+    try:
+        status = wait_json(broker.port, "phasewatch/incubator-6/status", lambda s: s["state"] == "idle", timeout_s=15,
+                           **viewer)
+        assert status is not None, d.output()
+        def pub(user: str, topic: str) -> None:
+            subprocess.run(["mosquitto_pub", "-h", "127.0.0.1", "-p", str(broker.port), "-u", user, "-P", users[user],
+                            "-q", "1", "-r", "-t", topic, "-m", '{"state": "offline"}'], check=True, timeout=10)
+
+        # Another scope, and the read-only viewer, cannot overwrite this scope's state...
+        pub("incubator-7", "phasewatch/incubator-6/status")
+        pub("fleet-viewer", "phasewatch/incubator-6/status")
+        # ... while the other scope may write its own.
+        pub("incubator-7", "phasewatch/incubator-7/status")
+        got = subscribe(broker.port, "phasewatch/incubator-7/status", count=1, wait_s=3, **viewer)
+        assert got and json.loads(got[0][1])["state"] == "offline"
+        got = subscribe(broker.port, "phasewatch/incubator-6/status", count=1, wait_s=3, **viewer)
+        assert got and json.loads(got[0][1])["state"] == "idle"
+        # ... and without a password nobody reads anything.
+        assert subscribe(broker.port, "phasewatch/#", count=1, wait_s=2) == []
+
+        viewer_site = tmp_path / "viewer.toml"
+        (tmp_path / "viewer-password").write_text(users["fleet-viewer"])
+        viewer_site.write_text(f'[mqtt]\nurl = "{broker.url}"\nusername = "fleet-viewer"\n'
+                               f'password_file = "{tmp_path / "viewer-password"}"\n')
+        fleet_page = subprocess.Popen([PYTHON, "-m", "daemon.cli", "fleet", "--site", str(viewer_site), "--serve", "0"],
+                                      cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+        line = fleet_page.stdout.readline()  # type: ignore[union-attr]
+        m = re.search(r"on (http://127\.0\.0\.1:\d+/)", line)
+        assert m, line
+        deadline = time.monotonic() + 15
+        rows: list[dict] = []
+        while time.monotonic() < deadline and len(rows) < 2:
+            with urllib.request.urlopen(m.group(1) + "fleet.json", timeout=10) as r:
+                rows = json.loads(r.read())
+            time.sleep(0.2)
+        by_scope = {r["scope"]: r for r in rows}
+        assert by_scope["incubator-6"]["state"] == "idle" and by_scope["incubator-7"]["state"] == "offline"
+        with urllib.request.urlopen(m.group(1), timeout=10) as r:
+            page = r.read().decode()
+        assert "incubator-6" in page and f'href="{d.url}"' in page and ">idle<" in page
+    finally:
+        if fleet_page is not None:
+            fleet_page.send_signal(signal.SIGTERM)
+            fleet_page.wait(20)
+        d.stop()
+        broker.close()
