@@ -263,3 +263,27 @@ def test_readme_access_list_with_passwords_and_the_fleet_page(tmp_path):
             fleet_page.wait(20)
         d.stop()
         broker.close()
+
+
+def test_the_queue_keeps_the_newest_per_topic_and_drops_the_oldest_when_full():
+    from types import SimpleNamespace
+
+    from daemon.mqtt.publisher import MqttPublisher
+
+    station = SimpleNamespace(profile=SimpleNamespace(scope=SimpleNamespace(name="Larkspur Row incubator 3")))
+    pub = MqttPublisher(MqttOptions(url="mqtt://127.0.0.1", queue_size=10), station)  # type: ignore[arg-type]
+    assert pub.topic("status") == "phasewatch/larkspur-row-incubator-3/status"
+    for i in range(15):
+        pub.put(pub.topic("wells", f"A{i + 1}"), b"%d" % i)
+    assert pub.dropped == 5 and len(pub._pending) == 10
+    assert next(iter(pub._pending)) == pub.topic("wells", "A6")  # the five oldest went
+    pub.put(pub.topic("wells", "A6"), b"newer")  # replaces the waiting one: nothing dropped
+    assert pub.dropped == 5 and list(pub._pending)[-1] == pub.topic("wells", "A6")
+    assert pub._pending[pub.topic("wells", "A6")] == b"newer"
+    # Every topic's latest is kept for the next connection, dropped from the queue or not.
+    assert len(pub._latest) == 15 and pub._latest[pub.topic("wells", "A1")] == b"0"
+    pub.on_event({"type": "alert", "timelapse_id": 2, "id": 9, "t_s": 10.0, "level": "warning", "kind": "focus",
+                  "message": "focus failed at B3-s0"})
+    alerts = json.loads(pub._latest[pub.topic("alerts")])
+    assert alerts["count"] == 1 and alerts["alerts"][0]["message"] == "focus failed at B3-s0"
+    assert alerts["schema"] == 1
