@@ -178,7 +178,7 @@ def test_a_broker_away_at_start_neither_stops_the_time_lapse_nor_loses_the_state
         assert code == 201, body
         assert wait_until_over(d, body["id"]), d.output()
         broker = Broker(tmp_path, port)
-        # Back-off tops out at 30 s; the tries so far have reached a few seconds.
+        # Back-off tops out at 15 s (plus jitter); the tries so far have reached a few seconds.
         status = wait_json(port, f"{PREFIX}/incubator-5/status", lambda s: s["state"] == "idle", timeout_s=40)
         assert status is not None, d.output()
         wells = subscribe(port, f"{PREFIX}/incubator-5/wells/+", count=2, wait_s=5)

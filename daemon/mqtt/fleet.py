@@ -22,6 +22,7 @@ import aiomqtt
 
 from daemon.mqtt import topics as t
 from daemon.mqtt.options import MqttOptions
+from daemon.mqtt.publisher import BACKOFF_MAX_S
 
 log = logging.getLogger(__name__)
 
@@ -133,7 +134,7 @@ async def follow(opts: MqttOptions, fleet: Fleet, *, on_message: Any = None) -> 
         except aiomqtt.MqttError as exc:
             log.warning("fleet: broker %s: %s; next try in %.1f s", opts.url, exc, delay_s)
         await asyncio.sleep(delay_s)
-        delay_s = min(delay_s * 2, 30.0)
+        delay_s = min(delay_s * 2, BACKOFF_MAX_S)
 
 
 async def collect(opts: MqttOptions, *, wait_s: float = DEFAULT_WAIT_S, quiet_s: float = QUIET_S) -> Fleet:

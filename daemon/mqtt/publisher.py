@@ -40,7 +40,7 @@ if TYPE_CHECKING:
 log = logging.getLogger(__name__)
 
 BACKOFF_FIRST_S = 0.5
-BACKOFF_MAX_S = 30.0
+BACKOFF_MAX_S = 15.0
 # How often the station's state word and progress are looked at (cheap, on the loop).
 WATCH_INTERVAL_S = 0.5
 # The thumbnail is remade at most this often, however fast frames are saved.
@@ -234,6 +234,8 @@ class MqttPublisher:
                                 exc, delay_s)
             except (OSError, ssl.SSLError) as exc:
                 log.warning("MQTT: broker at %s:%s: %s; next try in %.1f s", ep.host, ep.port, exc, delay_s)
+            except Exception:  # noqa: BLE001 - reporting must outlive any fault of its own
+                log.exception("MQTT: unexpected fault talking to %s:%s; next try in %.1f s", ep.host, ep.port, delay_s)
             self.connected = False
             await asyncio.sleep(delay_s * random.uniform(0.8, 1.2))
             delay_s = min(delay_s * 2, BACKOFF_MAX_S)
