@@ -190,6 +190,7 @@ def _run(folder: Path, broker: Broker, followers: list[Follower], scopes: list[S
     deadline = time.monotonic() + 30
     while len(follower.first_seen) < SCOPES and time.monotonic() < deadline:
         time.sleep(0.05)
+    seen_count = len(follower.first_seen)
     seen_after_ready = [follower.first_seen[s.name] - s.ready for s in scopes if s.name in follower.first_seen]  # type: ignore[operator]
     seen_after_spawn = [follower.first_seen[s.name] - s.spawned for s in scopes if s.name in follower.first_seen]
     all_seen_s = max(seen_after_ready) if len(seen_after_ready) == SCOPES else float("inf")
@@ -283,8 +284,8 @@ def _run(folder: Path, broker: Broker, followers: list[Follower], scopes: list[S
 
     up_p95 = p95(late["up"])
     rows: list[dict[str, object]] = [
-        {"name": "scopes seen by the fleet", "value": len(follower.first_seen), "unit": "scopes",
-         "target": f"== {SCOPES}", "ok": len(follower.first_seen) == SCOPES},
+        {"name": "scopes seen by the fleet", "value": seen_count, "unit": "scopes",
+         "target": f"== {SCOPES}", "ok": seen_count == SCOPES},
         {"name": "fleet sees a scope, after ready (max)", "value": all_seen_s, "unit": "s", "target": "<= 5",
          "ok": all_seen_s <= 5.0},
         {"name": "fleet sees a scope, after ready (median)", "value": statistics.median(seen_after_ready), "unit": "s",
