@@ -79,7 +79,7 @@ def test_the_daemon_never_imports_simulator_internals() -> None:
     assert violations("daemon", "drivers.sim") == []
 
 
-FRONT_ENDS = ("daemon.web", "daemon.commands", "daemon.cli")
+FRONT_ENDS = ("daemon.web", "daemon.commands", "daemon.cli", "daemon.mqtt")
 
 
 def test_the_service_and_the_domain_never_import_a_front_end() -> None:

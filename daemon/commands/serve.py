@@ -5,9 +5,11 @@ from __future__ import annotations
 import argparse
 import logging
 import math
+from pathlib import Path
 
 from daemon.commands.common import add_profile_options
 from drivers.options import ConfigError
+from daemon.mqtt.options import mqtt_options
 from daemon.profile import load_profile
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.storage.verify import DEFAULT_RATE_MB_S
@@ -33,6 +35,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--verify-rate-mb", type=float, default=DEFAULT_RATE_MB_S, metavar="MB_PER_S",
                    help=f"highest read rate of the background check of every stored frame "
                         f"(default {DEFAULT_RATE_MB_S:g} MB/s; 0 turns it off)")
+    p.add_argument("--mqtt", metavar="URL", default=None,
+                   help="report state, progress, readings and alerts to this MQTT broker: mqtt://host[:port] "
+                        "or mqtts://host[:port] (read-only: nothing received moves the scope; docs/MQTT.md)")
+    p.add_argument("--site", type=Path, metavar="FILE", default=None,
+                   help="site configuration file (TOML) with the lab's [mqtt] broker, credentials and TLS files")
     p.add_argument("--log-level", choices=("debug", "info", "warning", "error"), default="info", help="log detail")
     p.set_defaults(func=run)
 
@@ -50,6 +57,9 @@ async def run(args: argparse.Namespace) -> int:
         raise ConfigError("", "serve", "--reserve-mb", f"must be 0 or more, got {args.reserve_mb}")
     if not (math.isfinite(args.verify_rate_mb) and args.verify_rate_mb >= 0):
         raise ConfigError("", "serve", "--verify-rate-mb", f"must be 0 or more, got {args.verify_rate_mb}")
+    mqtt = mqtt_options(args.site, args.mqtt)
+    if mqtt.enabled:
+        mqtt.password()  # a missing password file is a start-up error, not a reconnect loop
     logging.basicConfig(level=args.log_level.upper(), format="%(levelname)s %(name)s: %(message)s")
     logging.getLogger("aiohttp.access").setLevel(logging.WARNING)
     limit_heap_growth()
@@ -57,5 +67,6 @@ async def run(args: argparse.Namespace) -> int:
         profile=profile, data_dir=args.data, host=args.host, port=args.port, sim_speed=args.sim_speed,
         max_fps=args.max_fps, discovery=not args.no_discovery, reserve_mb=args.reserve_mb,
         verify=args.verify, verify_rate_mb_s=args.verify_rate_mb,
+        mqtt=mqtt if mqtt.enabled else None,
     )
     return await serve(cfg)

@@ -29,12 +29,13 @@ from drivers import atomic
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.web import API_PREFIX, api, events
 from daemon.web.auth import MAX_FAILURES, MAX_TOTAL_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
-from daemon.web.keys import AUTH, CONFIG, METRICS, SOCKETS, STATION
+from daemon.web.keys import AUTH, CONFIG, METRICS, MQTT, SOCKETS, STATION
 from daemon.metrics import Metrics
 from daemon.web.notify import Notifier
 from daemon.web.openapi import document
 from daemon.station import Station
 from daemon.live import DEFAULT_MAX_FPS
+from daemon.mqtt.options import MqttOptions
 
 log = logging.getLogger(__name__)
 
@@ -60,6 +61,7 @@ class ServeConfig:
     verify_rate_mb_s: float = DEFAULT_RATE_MB_S  # the background check of every frame after start; 0: off
     max_token_failures: int = MAX_FAILURES  # wrong tokens per client per minute before 429
     max_token_failures_total: int = MAX_TOTAL_FAILURES  # the same from all clients together
+    mqtt: MqttOptions | None = None  # report to the lab's broker (see docs/MQTT.md)
 
 
 # -- pages and small endpoints ---------------------------------------------------------
@@ -165,6 +167,23 @@ async def station_ctx(app: web.Application) -> AsyncIterator[None]:
             index.close()
 
 
+async def mqtt_ctx(app: web.Application) -> AsyncIterator[None]:
+    """Report to the broker while the station runs (after it opened, before it closes)."""
+    cfg = app[CONFIG]
+    if cfg.mqtt is None or not cfg.mqtt.enabled:
+        yield
+        return
+    from daemon.mqtt.publisher import MqttPublisher
+
+    publisher = MqttPublisher(cfg.mqtt, app[STATION])
+    app[MQTT] = publisher
+    await publisher.start()
+    try:
+        yield
+    finally:
+        await publisher.stop()
+
+
 async def close_viewers(app: web.Application) -> None:
     """On shutdown: end MJPEG streams and WebSockets so the server need not wait for them."""
     if STATION in app:
@@ -195,6 +214,7 @@ def create_app(cfg: ServeConfig) -> web.Application:
     app.router.add_get("/", index_page)
     app.router.add_get("/static/{name}", static_file)
     app.cleanup_ctx.append(station_ctx)
+    app.cleanup_ctx.append(mqtt_ctx)
     app.on_shutdown.append(close_viewers)
     app.on_response_prepare.append(name_the_server)
     _quiet_server_errors()
@@ -260,6 +280,8 @@ async def serve(
                 advertiser = None
         watchdog = asyncio.create_task(notifier.watchdog_loop(), name="systemd watchdog")
         url = browser_url(cfg.host, port)
+        if MQTT in app:
+            app[MQTT].set_page_url(page_url(cfg.host, port))
         notifier.ready(f"serving {cfg.profile.name} on {url}")
         _greet(cfg, url)
         if on_ready is not None:
@@ -280,6 +302,15 @@ async def serve(
         for sig in installed:
             loop.remove_signal_handler(sig)
         notifier.close()
+
+
+def page_url(host: str, port: int) -> str:
+    """The page's address as another machine of the lab would use it (for the fleet view)."""
+    if host in ("0.0.0.0", "", "::"):
+        import socket
+
+        return browser_url(socket.getfqdn(), port)
+    return browser_url(host, port)
 
 
 def _greet(cfg: ServeConfig, url: str) -> None:
