@@ -68,7 +68,8 @@ def open_stage(ctx: StageContext) -> StageBuild:
     plate, focal = sim.plate, sim.focal_plane  # type: ignore[attr-defined]
     start = Position(plate.a1_x_um, plate.a1_y_um, focal.z0_um - PARKED_BELOW_FOCUS_UM)
     emulator = GcodeEmulator(
-        clock=clock, stage=profile.stage, focus=profile.focus, motion=sim.motion, start=start  # type: ignore[attr-defined]
+        clock=clock, stage=profile.stage, focus=profile.focus, motion=sim.motion, start=start,  # type: ignore[attr-defined]
+        seed=sim.seed,  # type: ignore[attr-defined]
     )
     port = emulator.start()
     motion = GcodeController(
