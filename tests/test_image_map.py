@@ -94,3 +94,29 @@ def test_profile_camera_mount_is_optional_and_strict(tmp_path: Path) -> None:
     path.write_text(text + "\n[camera_mount]\nrotation = 1.5\n")
     with pytest.raises(ConfigError, match=r"\[camera_mount\] rotation: .*rotation_deg"):
         load_profile(path)
+
+
+def test_map_fit_matches_scikit_images_affine_estimate_and_drops_a_failed_registration() -> None:
+    from skimage.transform import AffineTransform
+
+    from daemon.commission.image_map import fit_image_map
+
+    true = StageImageMap.from_parameters(
+        pixel_size_um=0.3855, rotation_deg=1.6, skew_deg=0.3, aspect=1.01, frame_shape=(480, 640)
+    )
+    steps = np.array([(i * 40.0, j * 40.0) for i in range(-2, 3) for j in range(-2, 3)])
+    rng = np.random.default_rng(3)
+    shifts = np.array([true.image_shift_px(tuple(s)) for s in steps]) + 0.05 * rng.standard_normal(steps.shape)
+    shifts[7] += (6.0, -4.0)  # one registration gone wrong
+    fit = fit_image_map(steps, shifts, frame_shape=(480, 640))
+    assert not fit.used[7] and fit.used.sum() == 24
+    assert fit.rms_residual_px < 0.1
+    # scikit-image's least-squares affine estimate (with an offset, fitted here as well) on the
+    # same good points, with stage moves as source and minus the image shifts as destination.
+    ok = fit.used
+    reference = AffineTransform.from_estimate(steps[ok], -shifts[ok])
+    assert fit.map.px_per_um == pytest.approx(reference.params[:2, :2], abs=2e-4)
+    params = fit.map.parameters()
+    assert params["rotation_deg"] == pytest.approx(1.6, abs=0.01)
+    assert params["skew_deg"] == pytest.approx(0.3, abs=0.02)
+    assert params["pixel_size_um"] == pytest.approx(0.3855, rel=2e-4)

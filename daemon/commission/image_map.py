@@ -110,3 +110,80 @@ def image_to_stage_um(smap: StageImageMap, px: float, py: float, *, stage_x_um: 
     offset = np.array([px - smap.centre_px[0], py - smap.centre_px[1]], float)
     d = np.linalg.solve(np.asarray(smap.px_per_um, float), offset)
     return stage_x_um + float(d[0]), stage_y_um + float(d[1])
+
+
+@dataclasses.dataclass(frozen=True)
+class MapFit:
+    """A least-squares fit of the map to stage moves and the image shifts they caused.
+
+    ``residuals_px`` (n x 2) are measured minus fitted image shifts; ``used`` marks the
+    points the fit kept (a registration that went wrong is left out, see :func:`fit_image_map`)."""
+
+    map: StageImageMap
+    stage_moves_um: np.ndarray
+    image_shifts_px: np.ndarray
+    residuals_px: np.ndarray
+    used: np.ndarray
+
+    @property
+    def rms_residual_px(self) -> float:
+        r = self.residuals_px[self.used]
+        return float(np.sqrt(np.mean(np.sum(r * r, axis=1)))) if len(r) else float("nan")
+
+    def standard_errors(self) -> dict[str, float]:
+        """Standard errors of the map's parameters from the scatter of the residuals: the
+        least-squares covariance of each row of A, sigma^2 (S^T S)^-1 with sigma^2 the
+        residual variance over n - 2 degrees of freedom (each row is its own regression),
+        carried to the parameters through their derivatives (first-order propagation)."""
+        s = self.stage_moves_um[self.used]
+        r = self.residuals_px[self.used]
+        n = len(s)
+        if n <= 2:
+            return {}
+        inv = np.linalg.inv(s.T @ s)
+        cov = np.zeros((4, 4))
+        for k in range(2):
+            cov[2 * k : 2 * k + 2, 2 * k : 2 * k + 2] = float(np.sum(r[:, k] ** 2)) / (n - 2) * inv
+        a = np.asarray(self.map.px_per_um, float)
+        base = self.map.parameters()
+        names = [k for k, v in base.items() if not isinstance(v, bool)]
+        jac = np.zeros((len(names), 4))
+        for j in range(4):
+            step = 1e-6 * max(abs(a.flat[j]), float(np.abs(a).max()))
+            bumped = a.copy()
+            bumped.flat[j] += step
+            moved = StageImageMap(bumped, self.map.centre_px).parameters()
+            jac[:, j] = [(float(moved[name]) - float(base[name])) / step for name in names]
+        return {name: float(math.sqrt(max(v, 0.0))) for name, v in zip(names, np.diag(jac @ cov @ jac.T))}
+
+
+OUTLIER_PX = 1.0  # a point this far off (and 5 median residuals) is a failed registration
+
+
+def fit_image_map(
+    stage_moves_um: np.ndarray, image_shifts_px: np.ndarray, *, frame_shape: tuple[int, int]
+) -> MapFit:
+    """A from stage moves dS_i (um) and the image shifts d_i (px) they caused: the linear
+    least-squares solution of d_i = -A dS_i (no offset: the moves are taken from the
+    reference frame's position, which moved the image by nothing). Points off by more than
+    :data:`OUTLIER_PX` and five times the median residual are dropped and the rest refitted,
+    twice at most. Raises ValueError when fewer than three points span the plane."""
+    s = np.asarray(stage_moves_um, float).reshape(-1, 2)
+    d = np.asarray(image_shifts_px, float).reshape(-1, 2)
+    if len(s) != len(d):
+        raise ValueError(f"{len(s)} stage moves but {len(d)} image shifts")
+    used = np.ones(len(s), bool)
+    h, w = frame_shape
+    for _ in range(3):
+        if used.sum() < 3 or np.linalg.matrix_rank(s[used]) < 2:
+            raise ValueError("need at least three stage moves that span x and y to fit the map")
+        at, *_ = np.linalg.lstsq(s[used], -d[used], rcond=None)
+        a = at.T
+        residuals = d + s @ a.T
+        size = np.hypot(residuals[:, 0], residuals[:, 1])
+        limit = max(OUTLIER_PX, 5.0 * float(np.median(size[used])))
+        keep = size <= limit
+        if np.array_equal(keep & used, used):
+            break
+        used = keep & used
+    return MapFit(StageImageMap(a, ((w - 1) / 2.0, (h - 1) / 2.0)), s, d, residuals, used)
