@@ -1,11 +1,13 @@
-"""Scope profiles: one TOML file per scope build (camera, optics, stage, focus, lamp, sim).
+"""Scope profiles: one TOML file per scope build (camera, optics, stage, focus, lamp, camera
+mount, sim).
 
 Loading is strict (see :mod:`drivers.options`): every error names the file, the section and
 the option and says what is allowed. ``[camera]`` and ``[stage]`` hold the options every
 driver shares (:mod:`drivers.sections`) plus the chosen driver's own options (declared
 next to the driver, found through :mod:`drivers.registry`); an option of another driver
-is an error that says whose it is. ``[sim]`` is read only when a simulated driver is
-chosen.
+is an error that says whose it is. ``[camera_mount]`` (how the camera sits against the
+stage, measured by ``phasewatch commission``) may be left out. ``[sim]`` is read only when
+a simulated driver is chosen.
 """
 
 from __future__ import annotations
