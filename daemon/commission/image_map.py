@@ -132,18 +132,19 @@ class MapFit:
 
     def standard_errors(self) -> dict[str, float]:
         """Standard errors of the map's parameters from the scatter of the residuals: the
-        least-squares covariance of each row of A, sigma^2 (S^T S)^-1 with sigma^2 the
-        residual variance over n - 2 degrees of freedom (each row is its own regression),
+        least-squares covariance of each row of A (with its offset), sigma^2 (X^T X)^-1 with
+        sigma^2 the residual variance over n - 3 degrees of freedom (each row is its own regression),
         carried to the parameters through their derivatives (first-order propagation)."""
         s = self.stage_moves_um[self.used]
         r = self.residuals_px[self.used]
         n = len(s)
-        if n <= 2:
+        if n <= 3:
             return {}
-        inv = np.linalg.inv(s.T @ s)
+        design = np.column_stack([-s, np.ones(n)])
+        inv = np.linalg.inv(design.T @ design)[:2, :2]
         cov = np.zeros((4, 4))
         for k in range(2):
-            cov[2 * k : 2 * k + 2, 2 * k : 2 * k + 2] = float(np.sum(r[:, k] ** 2)) / (n - 2) * inv
+            cov[2 * k : 2 * k + 2, 2 * k : 2 * k + 2] = float(np.sum(r[:, k] ** 2)) / (n - 3) * inv
         a = np.asarray(self.map.px_per_um, float)
         base = self.map.parameters()
         names = [k for k, v in base.items() if not isinstance(v, bool)]
@@ -164,10 +165,11 @@ def fit_image_map(
     stage_moves_um: np.ndarray, image_shifts_px: np.ndarray, *, frame_shape: tuple[int, int]
 ) -> MapFit:
     """A from stage moves dS_i (um) and the image shifts d_i (px) they caused: the linear
-    least-squares solution of d_i = -A dS_i (no offset: the moves are taken from the
-    reference frame's position, which moved the image by nothing). Points off by more than
-    :data:`OUTLIER_PX` and five times the median residual are dropped and the rest refitted,
-    twice at most. Raises ValueError when fewer than three points span the plane."""
+    least-squares solution of d_i = -A dS_i + c. The offset c is where the reference frame
+    itself stopped off its target (the stage's stopping scatter is in every shift measured
+    from it). Points off by more than :data:`OUTLIER_PX` and five times the median residual
+    are dropped and the rest refitted, twice at most. Raises ValueError when fewer than
+    three points span the plane."""
     s = np.asarray(stage_moves_um, float).reshape(-1, 2)
     d = np.asarray(image_shifts_px, float).reshape(-1, 2)
     if len(s) != len(d):
@@ -177,9 +179,10 @@ def fit_image_map(
     for _ in range(3):
         if used.sum() < 3 or np.linalg.matrix_rank(s[used]) < 2:
             raise ValueError("need at least three stage moves that span x and y to fit the map")
-        at, *_ = np.linalg.lstsq(s[used], -d[used], rcond=None)
-        a = at.T
-        residuals = d + s @ a.T
+        design = np.column_stack([-s, np.ones(len(s))])
+        coef, *_ = np.linalg.lstsq(design[used], d[used], rcond=None)
+        a = coef[:2].T
+        residuals = d - design @ coef
         size = np.hypot(residuals[:, 0], residuals[:, 1])
         limit = max(OUTLIER_PX, 5.0 * float(np.median(size[used])))
         keep = size <= limit

@@ -196,10 +196,17 @@ async def measure_settle(session: Session, x_um: float, y_um: float, *, axis: st
     part is still."""
     window = FIRST_WINDOW_S
     dx, dy = (move_um, 0.0) if axis == "x" else (0.0, move_um)
+    scope = session.scope
     while True:
         await session.go(x_um, y_um, side=(-1, -1))
-        await session.scope.move_to(x_um=x_um + dx, y_um=y_um + dy, backlash_approach=False)
-        ended = session.scope.clock.now()
+        # A move returns after the controller has said it finished and then reported where it
+        # is; one report exchange is timed here and taken off, so the times count from when
+        # the motion ended (the moment the driver's settle wait starts from).
+        asked = scope.clock.now()
+        await scope.position()
+        report_s = scope.clock.now() - asked
+        await scope.move_to(x_um=x_um + dx, y_um=y_um + dy, backlash_approach=False)
+        ended = scope.clock.now() - report_s
         frames = await session.burst(window, started_s=ended)
         result = await asyncio.to_thread(analyse_burst, frames, axis=axis, move_um=move_um)
         if result.still or window >= LONGEST_WINDOW_S:
