@@ -1,11 +1,13 @@
-"""Scope profiles: one TOML file per scope build (camera, optics, stage, focus, lamp, sim).
+"""Scope profiles: one TOML file per scope build (camera, optics, stage, focus, lamp, camera
+mount, sim).
 
 Loading is strict (see :mod:`drivers.options`): every error names the file, the section and
 the option and says what is allowed. ``[camera]`` and ``[stage]`` hold the options every
 driver shares (:mod:`drivers.sections`) plus the chosen driver's own options (declared
 next to the driver, found through :mod:`drivers.registry`); an option of another driver
-is an error that says whose it is. ``[sim]`` is read only when a simulated driver is
-chosen.
+is an error that says whose it is. ``[camera_mount]`` (how the camera sits against the
+stage, measured by ``phasewatch commission``) may be left out. ``[sim]`` is read only when
+a simulated driver is chosen.
 """
 
 from __future__ import annotations
@@ -50,6 +52,29 @@ class ScopeSection:
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
+class CameraMountSection:
+    """How the camera sits against the stage; with ``[optics]``' pixel size it is the map
+    from stage micrometres to image pixels (:mod:`daemon.commission.image_map`).
+    ``phasewatch commission`` measures it; a profile without the section has a camera
+    square to the stage, not mirrored."""
+
+    rotation_deg: float = option(
+        0.0, doc="angle from the stage's +x axis to the image's +column axis, turning towards stage +y",
+        min=-180.0, max=180.0, unit="deg",
+    )
+    skew_deg: float = option(
+        0.0, doc="how far the stage's x and y axes, seen in the image, are from square (positive: wider than 90 deg)",
+        min=-20.0, max=20.0, unit="deg",
+    )
+    aspect: float = option(
+        1.0, doc="image length of a stage y step over that of an equal x step (1: both axes equally calibrated)",
+        min=0.5, max=2.0,
+    )
+    mirrored: bool = option(False, doc="the image is mirrored (an odd number of mirrors in the light path)")
+    measured: str = option("", doc="when commissioning measured these (ISO 8601); empty: not measured")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
 class Profile:
     path: Path
     scope: ScopeSection
@@ -59,6 +84,7 @@ class Profile:
     focus: FocusSection
     illumination: IlluminationSection
     sim: Any  # the [sim] section when a simulated driver is chosen, else None
+    camera_mount: CameraMountSection = dataclasses.field(default_factory=CameraMountSection)
 
     @property
     def is_simulated(self) -> bool:
@@ -76,8 +102,10 @@ _PLAIN_SECTIONS: dict[str, type] = {
     "illumination": IlluminationSection,
 }
 _DRIVER_SECTIONS: dict[str, type] = {"camera": CameraSection, "stage": StageSection}
-# In the order they are checked (and listed in messages).
-SECTION_NAMES = ("scope", "camera", "optics", "stage", "focus", "illumination", "sim")
+# Sections a profile may leave out (their options all have defaults).
+_OPTIONAL_SECTIONS: dict[str, type] = {"camera_mount": CameraMountSection}
+# In the order they are checked (and listed in messages); [sim] last.
+SECTION_NAMES = ("scope", "camera", "optics", "stage", "focus", "illumination", "camera_mount", "sim")
 
 
 def resolve_profile_path(name_or_path: str | Path) -> Path:
@@ -159,6 +187,9 @@ def load_profile(name_or_path: str | Path) -> Profile:
     parts: dict[str, Any] = {}
     specs: dict[str, CameraDriver | StageDriver] = {}
     for name in SECTION_NAMES[:-1]:
+        if name in _OPTIONAL_SECTIONS:
+            parts[name] = load_section(_OPTIONAL_SECTIONS[name], raw.get(name, {}), file=path, section=name)
+            continue
         if name not in raw:
             raise ConfigError(path, name, None, f"missing section [{name}]")
         if name in _DRIVER_SECTIONS:

@@ -99,10 +99,18 @@ class Scope:
                     self.holder = None
 
     async def move_to(
-        self, x_um: float | None = None, y_um: float | None = None, z_um: float | None = None
+        self,
+        x_um: float | None = None,
+        y_um: float | None = None,
+        z_um: float | None = None,
+        *,
+        backlash_approach: bool = True,
     ) -> Position:
-        """Move and wait until settled. Soft limits are checked by the driver before sending."""
-        self.last_position = await self.motion.move_to(x_um=x_um, y_um=y_um, z_um=z_um)
+        """Move and wait until settled. Soft limits are checked by the driver before sending;
+        ``backlash_approach=False`` skips the final approach from below (see the driver)."""
+        self.last_position = await self.motion.move_to(
+            x_um=x_um, y_um=y_um, z_um=z_um, backlash_approach=backlash_approach
+        )
         return self.last_position
 
     async def home(self) -> Position:

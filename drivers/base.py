@@ -90,8 +90,14 @@ class MotionController(Protocol):
         x_um: float | None = None,
         y_um: float | None = None,
         z_um: float | None = None,
+        *,
+        backlash_approach: bool = True,
     ) -> Position:
-        """Move (axes left ``None`` stay), wait until motion completes, return the position."""
+        """Move (axes left ``None`` stay), wait until motion completes, return the position.
+
+        Every final approach is made from below on the axes whose backlash the profile
+        gives (always on the focus); ``backlash_approach=False`` goes straight to the
+        target instead, leaving the play where the move leaves it (for measuring it)."""
         ...
 
     async def position(self) -> Position: ...

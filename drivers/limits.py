@@ -7,7 +7,8 @@ the vessel, so no target and no intermediate point of a planned move may lie abo
 Straight-line moves between two points inside the box stay inside it (the box is
 convex), so checking every waypoint of a plan checks the whole path. The focus
 approach (:func:`plan_focus_approach`) ends every focus move with a short move upwards,
-so the drive's backlash is always taken up in the same direction.
+so the drive's backlash is always taken up in the same direction; the stage's x and y
+do the same (:func:`plan_approach`) once their backlash is known.
 """
 
 from __future__ import annotations
@@ -34,22 +35,29 @@ def approach_overshoot_um(backlash_um: float) -> float:
     return backlash_um + max(5.0, 0.5 * backlash_um)
 
 
-def plan_focus_approach(
-    current_z_um: float, target_z_um: float, *, backlash_um: float, z_min_um: float
-) -> list[float]:
-    """Focus positions to visit, in order, so that the last one is reached from below.
+def plan_approach(current_um: float, target_um: float, *, backlash_um: float, lower_um: float) -> list[float]:
+    """Positions of one axis to visit, in order, so that the last one is reached from below.
 
     A target above the current position is reached directly (already from below). A
     lower target is reached via ``target - overshoot`` (see :func:`approach_overshoot_um`),
-    clamped at ``z_min_um`` since the soft limit holds for intermediate points too; a
-    target closer than the overshoot to ``z_min_um`` therefore gets a shorter approach.
+    clamped at the axis' lower soft limit ``lower_um`` since the limit holds for
+    intermediate points too; a target closer than the overshoot to it therefore gets a
+    shorter approach.
     """
-    if target_z_um >= current_z_um:
-        return [target_z_um]
-    below_um = max(z_min_um, target_z_um - approach_overshoot_um(backlash_um))
-    if below_um >= target_z_um:
-        return [target_z_um]
-    return [below_um, target_z_um]
+    if target_um >= current_um:
+        return [target_um]
+    below_um = max(lower_um, target_um - approach_overshoot_um(backlash_um))
+    if below_um >= target_um:
+        return [target_um]
+    return [below_um, target_um]
+
+
+def plan_focus_approach(
+    current_z_um: float, target_z_um: float, *, backlash_um: float, z_min_um: float
+) -> list[float]:
+    """Focus positions to visit, in order, so that the last one is reached from below
+    (:func:`plan_approach` on the focus axis, whose lower limit is ``z_min_um``)."""
+    return plan_approach(current_z_um, target_z_um, backlash_um=backlash_um, lower_um=z_min_um)
 
 
 @dataclasses.dataclass(frozen=True, slots=True)

@@ -70,6 +70,14 @@ class StageSection:
     xy_speed_um_s: float = option(5000.0, doc="travel speed in x and y", min=1.0, max=200000.0, unit="um/s")
     xy_accel_um_s2: float = option(20000.0, doc="acceleration in x and y", min=1.0, max=5e6, unit="um/s^2")
     settle_ms: float = option(50.0, doc="wait after a move before exposing (vibration)", min=0.0, max=10000.0, unit="ms")
+    backlash_x_um: float = option(
+        0.0, doc="x backlash; when set, every x move ends with an approach from below by more than this (0: straight there)",
+        min=0.0, max=1000.0, unit="um",
+    )
+    backlash_y_um: float = option(
+        0.0, doc="y backlash; when set, every y move ends with an approach from below by more than this (0: straight there)",
+        min=0.0, max=1000.0, unit="um",
+    )
     # Common, not G-code-only: the simulated stage is driven by the G-code driver too.
     reply_timeout_s: float = option(2.0, doc="longest wait for 'ok' to a plain command", min=0.05, max=60.0, unit="s")
     move_timeout_s: float = option(60.0, doc="longest wait for a move to complete", min=0.5, max=600.0, unit="s")

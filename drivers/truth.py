@@ -3,7 +3,8 @@
 On real hardware nothing does (:class:`NoTruth`). The simulated scope knows everything it
 renders (:class:`drivers.sim.truth.SimTruth`), and the daemon prints that beside its own
 estimates: true focal plane beside the autofocus result, true sensor constants beside
-the photon-transfer characterisation, true coverage beside the measured confluence.
+the photon-transfer characterisation, true coverage beside the measured confluence, true
+camera mount and stage mechanics beside what commissioning measured.
 Estimates never read the truth; reports only show it.
 
 Positions are stage coordinates in um, times seconds since the Unix epoch on the scope's
@@ -54,6 +55,29 @@ class GroundTruth(Protocol):
         """Fraction of the whole well bottom covered by cells at t."""
         ...
 
+    def image_px_per_um(self) -> np.ndarray | None:
+        """The 2x2 map A from a sample displacement (x, y) in um to an image displacement
+        (column, row) in px: a stage move by dS moves the image content by -A dS."""
+        ...
+
+    def camera_geometry(self) -> dict[str, float | bool] | None:
+        """How the camera sits against the stage: ``pixel_size_um`` (one pixel in the sample),
+        ``rotation_deg`` (from stage +x to the image's +column axis, turning towards stage +y),
+        ``skew_deg`` (how far the stage axes, seen in the image, are from square) and ``mirrored``."""
+        ...
+
+    def backlash_um(self) -> dict[str, float] | None:
+        """The play of each drive: ``{"x": .., "y": .., "z": ..}``."""
+        ...
+
+    def repeatability_um(self) -> float | None:
+        """Standard deviation of where an x or y move stops, per axis."""
+        ...
+
+    def settle_ms(self, tolerance_um: float) -> float | None:
+        """How long after an x or y move ends the stage stays within ``tolerance_um`` of where it stopped."""
+        ...
+
 
 class NoTruth:
     """Real hardware: nothing is known beyond what is measured."""
@@ -83,4 +107,19 @@ class NoTruth:
         return None
 
     def well_coverage(self, well: str, t_s: float) -> float | None:
+        return None
+
+    def image_px_per_um(self) -> np.ndarray | None:
+        return None
+
+    def camera_geometry(self) -> dict[str, float | bool] | None:
+        return None
+
+    def backlash_um(self) -> dict[str, float] | None:
+        return None
+
+    def repeatability_um(self) -> float | None:
+        return None
+
+    def settle_ms(self, tolerance_um: float) -> float | None:
         return None

@@ -33,7 +33,12 @@ FOCUS = FocusSection(
     settle_ms=20.0,
 )
 LAMP = IlluminationSection(control="controller", channel=0, level=1.0)
-MOTION = SimMotion(z_backlash_um=6.0, travel_margin_um=2000.0, z_crash_margin_um=200.0)
+# Play on the focus only, no stopping scatter and no ringing: these tests check exact
+# kinematics; tests/test_sim_mechanics.py checks the imperfections.
+MOTION = SimMotion(
+    x_backlash_um=0.0, y_backlash_um=0.0, z_backlash_um=6.0, repeatability_um=0.0, ring_amplitude_um=0.0,
+    travel_margin_um=2000.0, z_crash_margin_um=200.0,
+)
 
 
 def stage(**changes: object) -> StageSection:

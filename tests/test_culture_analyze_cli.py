@@ -31,7 +31,11 @@ def sim_frames(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
         t = world.t0_s + day * 86400.0
         z = world.true_focus_z_um(x, y, t)
         pixels = world.render(x, y, z, t_s=t, exposure_ms=20.0)
-        write_tiff(folder / f"{name}.tif", Frame(pixels, t, 20.0, 0.0, 8), pixel_size_um=world.pixel_um, x_um=x, y_um=y, z_um=z)
+        # The daemon writes the profile's pixel size (the simulated camera's true one is a little larger).
+        write_tiff(
+            folder / f"{name}.tif", Frame(pixels, t, 20.0, 0.0, 8),
+            pixel_size_um=world.profile.optics.pixel_size_um, x_um=x, y_um=y, z_um=z,
+        )
         out[name] = world.true_confluence(x, y, t)
     cv2.imwrite(str(folder / "sub" / "c4-day5.png"), cv2.imread(str(folder / "c4-day5.tif"), cv2.IMREAD_UNCHANGED))
     return out

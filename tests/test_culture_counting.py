@@ -23,9 +23,14 @@ def true_count(world: SimWorld, x_um: float, y_um: float, t_s: float) -> int:
     return int(np.count_nonzero(inside))
 
 
+# true_count takes the frame as a rectangle on the stage axes, so these worlds have the
+# camera square to the stage and its pixel the profile's (a commissioned scope).
+SQUARE_CAMERA = {"sim.camera_mount.rotation_deg": 0.0, "sim.camera_mount.pixel_size_error_percent": 0.0}
+
+
 @pytest.fixture(scope="module")
 def world_4x() -> SimWorld:
-    return SimWorld(sim_profile(640, 480, **{"optics.magnification": 4.0, "optics.numerical_aperture": 0.10}))
+    return SimWorld(sim_profile(640, 480, **{"optics.magnification": 4.0, "optics.numerical_aperture": 0.10}, **SQUARE_CAMERA))
 
 
 def test_reliability_limit_is_sub_confluent() -> None:
@@ -47,7 +52,7 @@ def test_sparse_count_close_to_truth(world_4x: SimWorld, well: str, day: float) 
 
 
 def test_small_counts_at_higher_magnification() -> None:
-    world = SimWorld(sim_profile(640, 480))  # 10x/0.25, 240 x 180 um
+    world = SimWorld(sim_profile(640, 480, **SQUARE_CAMERA))  # 10x/0.25, 240 x 180 um
     for well, day in (("B3", 1.5), ("E7", 1.5), ("E7", 2.5)):
         x, y = world.well_centre_um(well)
         t = world.t0_s + day * 86400.0

@@ -204,7 +204,14 @@ def test_phase_of_cells_follows_index_and_thickness(world: SimWorld) -> None:
 # -- frame geometry ------------------------------------------------------------------------
 
 
-def test_stage_position_is_the_centre_of_the_field(world: SimWorld) -> None:
+@pytest.fixture(scope="module")
+def square_world() -> SimWorld:
+    """The demo world with its camera square to the stage (the pixel size still off nominal)."""
+    return SimWorld(sim_profile(320, 240, **{"sim.camera_mount.rotation_deg": 0.0}))
+
+
+def test_stage_position_is_the_centre_of_the_field(square_world: SimWorld) -> None:
+    world = square_world
     x, y = busy_field(world, 80.0)
     t = world.t0_s + 80 * HOUR
     shift_px = 40
@@ -214,6 +221,65 @@ def test_stage_position_is_the_centre_of_the_field(world: SimWorld) -> None:
     c = world.cell_mask(x, y + shift_px * world.pixel_um, t)
     assert np.array_equal(a[shift_px:, :], c[:-shift_px, :])
     assert world.true_confluence(x, y, t) == pytest.approx(float(a.mean()))
+
+
+def test_pixel_size_is_off_the_nominal_by_the_mount_error(world: SimWorld) -> None:
+    mount = world.profile.sim.camera_mount
+    nominal = world.profile.optics.camera_pixel_um / world.profile.optics.magnification
+    assert mount.pixel_size_error_percent != 0.0  # the demo's camera is not what the profile says
+    assert world.pixel_um == pytest.approx(nominal * (1 + mount.pixel_size_error_percent / 100))
+
+
+def test_turned_camera_sees_the_stage_aligned_field_turned(world: SimWorld, square_world: SimWorld) -> None:
+    from scipy import ndimage
+
+    phi = math.radians(world.mount.rotation_deg)
+    assert 1.0 <= world.mount.rotation_deg <= 2.0  # a camera turned by a degree or two
+    x, y = busy_field(square_world, 80.0)
+    t = world.t0_s + 80 * HOUR
+    square = square_world.cell_mask(x, y, t).astype(np.uint8)
+    turned = world.cell_mask(x, y, t).astype(np.uint8)
+    # Frame pixel q (from the centre) shows the square frame's pixel R(phi) q
+    # (drivers/sim/mount.py); SciPy resamples in (row, column) order, an independent path.
+    c, s_ = math.cos(phi), math.sin(phi)
+    rc = np.array([[c, s_], [-s_, c]])  # R(phi) with both axes swapped to (row, column)
+    centre = (np.array(square.shape) - 1) / 2.0
+    expected = ndimage.affine_transform(square, rc, offset=centre - rc @ centre, order=0)
+    inner = (slice(20, -20), slice(20, -20))  # corners beyond the square frame are unknown to it
+    agree = float(np.mean(turned[inner] == expected[inner]))
+    assert agree > 0.99
+
+
+def test_truth_map_moves_the_image_as_a_stage_move_does(world: SimWorld) -> None:
+    from skimage.filters import window
+    from skimage.registration import phase_cross_correlation
+
+    x, y = busy_field(world, 80.0)
+    t = world.t0_s + 80 * HOUR
+    a_px_per_um = world.mount.image_px_per_um
+    step = np.array([3.7, -2.9])  # um: small against the frame, so the overlap is nearly all of it
+    z = world.true_focus_z_um(x, y, t)
+    hann = window("hann", world.shape)  # the frame's edges would otherwise dominate
+    ref = world.render_intensity(x, y, z, t_s=t)
+    moved = world.render_intensity(x + step[0], y + step[1], z, t_s=t)
+    # scikit-image's cross-correlation with DFT upsampling (Guizar-Sicairos et al. 2008) gives
+    # the shift that registers `moved` onto `ref` in (row, column): minus the content's shift.
+    # Unnormalised: beyond the optics' cutoff the frames hold only the same rounding pattern.
+    shift_rc, _, _ = phase_cross_correlation(
+        (ref - ref.mean()) * hann, (moved - moved.mean()) * hann, upsample_factor=50, normalization=None
+    )
+    content_shift = -np.array([shift_rc[1], shift_rc[0]])
+    # The window pulls the estimate towards zero by a few hundredths of a pixel; a rotation of
+    # the wrong sense or the nominal pixel size would be off by about 0.3 px.
+    assert content_shift == pytest.approx(-a_px_per_um @ step, abs=0.1)
+
+
+def test_mirrored_camera_reverses_the_rows(square_world: SimWorld) -> None:
+    mirrored = SimWorld(sim_profile(320, 240, **{"sim.camera_mount.rotation_deg": 0.0, "sim.camera_mount.mirrored": True}))
+    x, y = busy_field(square_world, 80.0)
+    t = square_world.t0_s + 80 * HOUR
+    assert np.array_equal(mirrored.cell_mask(x, y, t), square_world.cell_mask(x, y, t)[::-1])
+    assert np.linalg.det(mirrored.mount.image_px_per_um) < 0
 
 
 # -- image content (facts of the trade) ----------------------------------------------------

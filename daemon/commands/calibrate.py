@@ -28,6 +28,7 @@ from daemon.commands.common import (
     add_request_options,
     move_from_args,
     print_json,
+    stderr_progress,
     request_from_args,
     truth_beside,
 )
@@ -43,25 +44,6 @@ from daemon.scope import Scope
 from drivers.registry import offline_truth
 
 EXIT_CALIBRATION = 2
-
-
-def stderr_progress(prefix: str) -> Any:
-    """A ``progress(done, total, message)`` that keeps one updating line on a terminal and
-    prints about ten lines otherwise (logs, pipes)."""
-    tty = sys.stderr.isatty()
-    last_shown = [-1]
-
-    def show(done: int, total: int, message: str) -> None:
-        pct = int(100 * done / max(total, 1))
-        if tty:
-            end = "\n" if done >= total else ""
-            sys.stderr.write(f"\r\x1b[K{prefix}: {pct:3d} % ({done}/{total}) {message}{end}")
-        elif pct // 10 != last_shown[0] // 10 or done >= total:
-            sys.stderr.write(f"{prefix}: {pct:3d} % ({done}/{total}) {message}\n")
-        last_shown[0] = pct
-        sys.stderr.flush()
-
-    return show
 
 
 def register(sub: argparse._SubParsersAction) -> None:

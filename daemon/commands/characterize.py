@@ -26,9 +26,9 @@ from pathlib import Path
 from typing import Any
 
 from daemon import __version__
-from daemon.commands.calibrate import _move_to_blank, stderr_progress
+from daemon.commands.calibrate import _move_to_blank
+from daemon.commands.common import add_profile_options, print_json, stderr_progress
 from daemon.manual import MoveTarget
-from daemon.commands.common import add_profile_options, print_json
 from daemon.hardware import build_scope
 from daemon.illumination import CalibrationError
 from daemon.illumination.characterize import (

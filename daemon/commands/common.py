@@ -42,6 +42,25 @@ def print_json(obj: Any) -> None:
     sys.stdout.write("\n")
 
 
+def stderr_progress(prefix: str) -> Any:
+    """A ``progress(done, total, message)`` that keeps one updating line on a terminal and
+    prints about ten lines otherwise (logs, pipes)."""
+    tty = sys.stderr.isatty()
+    last_shown = [-1]
+
+    def show(done: int, total: int, message: str) -> None:
+        pct = int(100 * done / max(total, 1))
+        if tty:
+            end = "\n" if done >= total else ""
+            sys.stderr.write(f"\r\x1b[K{prefix}: {pct:3d} % ({done}/{total}) {message}{end}")
+        elif pct // 10 != last_shown[0] // 10 or done >= total:
+            sys.stderr.write(f"{prefix}: {pct:3d} % ({done}/{total}) {message}\n")
+        last_shown[0] = pct
+        sys.stderr.flush()
+
+    return show
+
+
 def truth_beside(estimate: float, truth: float | None, unit: str, fmt: str = ".2f") -> str:
     """'12.34 um (simulator: 12.00 um)', the simulator's truth beside every estimate."""
     text = f"{estimate:{fmt}} {unit}".rstrip()

@@ -17,6 +17,9 @@ motion rules below are the same in every dialect:
   every dialect.
 * **Backlash.** Every focus move ends with an approach from below: a lower target is
   reached via ``target - (backlash_um + margin)`` (clamped at ``z_min_um``), then up.
+  x and y do the same once ``[stage] backlash_x_um`` / ``backlash_y_um`` are set (0, the
+  default, moves straight there). ``backlash_approach=False`` moves straight to the
+  target on every axis, for measuring the play itself (``phasewatch commission``).
 * **Waiting for motion.** A move is complete when the dialect's finish command is
   answered; then the stage or focus settles (``settle_ms`` on the scope's clock) and the
   position report confirms where it went. A move that does not complete within
@@ -38,7 +41,7 @@ from drivers.base import MotionError, Position, PositionUnknownError
 from drivers.gcode.dialect import Dialect, path_limit
 from drivers.gcode.link import Backoff
 from drivers.gcode.protocol import LineProtocol, NoReply
-from drivers.limits import SoftLimits, plan_focus_approach
+from drivers.limits import SoftLimits, plan_approach, plan_focus_approach
 
 if TYPE_CHECKING:
     from drivers.clock import Clock
@@ -135,10 +138,15 @@ class GcodeController:
             return declared
 
     async def move_to(
-        self, x_um: float | None = None, y_um: float | None = None, z_um: float | None = None
+        self,
+        x_um: float | None = None,
+        y_um: float | None = None,
+        z_um: float | None = None,
+        *,
+        backlash_approach: bool = True,
     ) -> Position:
         async with self._lock:
-            return await self._move_locked(x_um, y_um, z_um)
+            return await self._move_locked(x_um, y_um, z_um, backlash_approach=backlash_approach)
 
     async def move_by(self, dx_um: float = 0.0, dy_um: float = 0.0, dz_um: float = 0.0) -> Position:
         """Relative move, planned and limit-checked as the absolute move it amounts to."""
@@ -212,7 +220,9 @@ class GcodeController:
 
     # ------------------------------------------------------------ motion
 
-    async def _move_locked(self, x_um: float | None, y_um: float | None, z_um: float | None) -> Position:
+    async def _move_locked(
+        self, x_um: float | None, y_um: float | None, z_um: float | None, *, backlash_approach: bool = True
+    ) -> Position:
         here = await self._known_position()
         self._line.require_running()
         target = Position(
@@ -221,13 +231,7 @@ class GcodeController:
             here.z_um if z_um is None else float(z_um),
         )
         self._limits.check(target, what="target")
-        z_stops = plan_focus_approach(
-            here.z_um, target.z_um, backlash_um=self._focus.backlash_um, z_min_um=self._focus.z_min_um
-        )
-        waypoints = [
-            (Position(target.x_um, target.y_um, z), "backlash approach point below the target")
-            for z in z_stops[:-1]
-        ] + [(target, "target")]
+        waypoints = self._approach(here, target) if backlash_approach else [(target, "target")]
         self._limits.check_path(waypoints)
         if _distance_um(here, target) == 0.0:
             return here
@@ -254,6 +258,26 @@ class GcodeController:
                 "travel limits: set them wider than the profile's soft limits"
             )
         return target
+
+    def _approach(self, here: Position, target: Position) -> list[tuple[Position, str]]:
+        """The target, preceded where needed by one point below it on every axis that must
+        be approached from below (all three at once, so the play is taken up together)."""
+        s, f = self._stage, self._focus
+
+        def stage_axis(current: float, goal: float, backlash_um: float, lower_um: float) -> list[float]:
+            if backlash_um <= 0.0:
+                return [goal]
+            return plan_approach(current, goal, backlash_um=backlash_um, lower_um=lower_um)
+
+        stops = [
+            stage_axis(here.x_um, target.x_um, s.backlash_x_um, s.x_min_um),
+            stage_axis(here.y_um, target.y_um, s.backlash_y_um, s.y_min_um),
+            plan_focus_approach(here.z_um, target.z_um, backlash_um=f.backlash_um, z_min_um=f.z_min_um),
+        ]
+        if all(len(axis) == 1 for axis in stops):
+            return [(target, "target")]
+        below = Position(*(axis[0] for axis in stops))
+        return [(below, "backlash approach point below the target"), (target, "target")]
 
     def _move_line(self, start: Position, end: Position) -> str:
         ends = (end.x_um, end.y_um, end.z_um)

@@ -17,6 +17,8 @@ class StageSettings(Protocol):
     xy_speed_um_s: float
     xy_accel_um_s2: float
     settle_ms: float
+    backlash_x_um: float     # 0: x moves go straight to their target
+    backlash_y_um: float
     reply_timeout_s: float   # real seconds: a property of the serial link
     move_timeout_s: float    # seconds on the scope's clock
     home_on_connect: bool

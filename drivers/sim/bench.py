@@ -82,6 +82,7 @@ def open_stage(ctx: StageContext) -> StageBuild:
     emulator = GcodeEmulator(
         clock=clock, stage=profile.stage, focus=profile.focus, motion=sim.motion, start=start,  # type: ignore[attr-defined]
         dialect=opts.dialect,
+        seed=sim.seed,  # type: ignore[attr-defined]
     )
     port = emulator.start()
     faults = sim.faults  # type: ignore[attr-defined]

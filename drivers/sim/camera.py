@@ -1,10 +1,10 @@
 """The simulated camera: exposes on the scope's clock and renders the simulated world.
 
-Each grab waits its exposure on the clock, then asks the simulated controller where the
-stage and focus physically are and how bright the LED is, and renders that frame in a
-worker thread (FFTs and noise on a full frame are too heavy for the event loop). The
-frame's time stamp is the start of the exposure. There is no frame buffer, so no frame
-can be stale.
+Each grab waits its exposure on the clock, asking the simulated controller half-way
+through where the stage and focus physically are and how bright the LED is, and renders
+that frame in a worker thread (FFTs and noise on a full frame are too heavy for the
+event loop). The frame's time stamp is the start of the exposure. There is no frame
+buffer, so no frame can be stale.
 """
 
 from __future__ import annotations
@@ -75,10 +75,13 @@ class SimCamera:
         async with self._grab_lock:
             exposure_ms, gain_db = self._exposure_ms, self._gain_db
             t_start = self._clock.now()
-            # The frame arrives after its exposure and the sensor's read-out, as from a real camera.
-            await self._clock.sleep(exposure_ms / 1000.0 + FRAME_READOUT_S)
+            # The frame shows the stage where it was at mid-exposure (motion blur is not
+            # rendered), so a ringing stage is seen at the frame's centre time.
+            await self._clock.sleep(exposure_ms / 2000.0)
             pos = self._position_source()
             lamp = float(self._lamp_source())
+            # The frame arrives after the rest of its exposure and the sensor's read-out.
+            await self._clock.sleep(exposure_ms / 2000.0 + FRAME_READOUT_S)
             try:
                 with self._clock.paused():
                     pixels = await asyncio.to_thread(
@@ -108,7 +111,7 @@ class SimCamera:
             "resolution": {"width_px": w, "height_px": h},
             "bit_depth": self._cfg.bit_depth,
             "pixel_format": f"mono{self._cfg.bit_depth}",
-            "pixel_size_um": self._world.pixel_um,
+            "pixel_size_um": self._world.mount.nominal_pixel_um,  # what the profile says; the truth knows better
             "exposure_ms": self._exposure_ms,
             "gain_db": self._gain_db,
             "controls": {

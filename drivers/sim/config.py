@@ -87,13 +87,47 @@ class SimIllumination:
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class SimMotion:
+    """The simulated mechanics (drivers/sim/mechanics.py): play on every axis, where a move
+    stops, and how the stage rings after it. The defaults are a budget build's, for
+    ``phasewatch commission`` to measure; zero them all for an ideal stage."""
+
+    x_backlash_um: float = option(7.0, doc="true backlash of the simulated x drive", min=0.0, max=500.0, unit="um")
+    y_backlash_um: float = option(4.5, doc="true backlash of the simulated y drive", min=0.0, max=500.0, unit="um")
     z_backlash_um: float = option(6.0, doc="true backlash of the simulated focus drive", min=0.0, max=500.0, unit="um")
+    repeatability_um: float = option(
+        0.25, doc="standard deviation of where an x or y move stops, per axis, drawn afresh for every move",
+        min=0.0, max=100.0, unit="um",
+    )
+    ring_amplitude_um: float = option(
+        2.5, doc="peak of the carriage's oscillation along the move after an x or y move stops (at most the move's length)",
+        min=0.0, max=1000.0, unit="um",
+    )
+    ring_frequency_hz: float = option(9.0, doc="frequency of that oscillation", min=0.1, max=1000.0, unit="Hz")
+    ring_decay_ms: float = option(70.0, doc="time constant of the oscillation's exponential decay", min=0.1, max=10000.0, unit="ms")
     travel_margin_um: float = option(
         2000.0, doc="mechanical travel beyond the profile's soft limits (x, y, and z below z_min_um)", min=0.0, max=100000.0, unit="um"
     )
     z_crash_margin_um: float = option(
         200.0, doc="focus travel above z_safe_max_um before the objective hits the vessel (hard limit)", min=0.0, max=10000.0, unit="um"
     )
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class SimCameraMount:
+    """How the simulated camera truly sits on the scope, which the profile does not know:
+    turned against the stage axes, its pixel size off the nominal (a relay lens or tube
+    length not quite what was bought), perhaps mirrored. Defaults are a plausible home
+    build's, for ``phasewatch commission`` to measure; 0, 0 and false for a perfect one."""
+
+    rotation_deg: float = option(
+        1.6, doc="angle from the stage's +x axis to the image's +column axis, turning towards stage +y",
+        min=-180.0, max=180.0, unit="deg",
+    )
+    pixel_size_error_percent: float = option(
+        2.8, doc="true pixel size in the sample, per cent above the profile's camera_pixel_um / magnification",
+        min=-50.0, max=100.0, unit="%",
+    )
+    mirrored: bool = option(False, doc="the image is mirrored: its rows run along stage -y (an odd number of mirrors)")
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -173,5 +207,6 @@ class SimConfig:
     sensor: SimSensor = section(SimSensor)
     illumination: SimIllumination = section(SimIllumination)
     motion: SimMotion = section(SimMotion)
+    camera_mount: SimCameraMount = section(SimCameraMount)
     optics: SimOptics = section(SimOptics)
     faults: SimFaults = section(SimFaults)

@@ -27,9 +27,11 @@ Mechanics
 Moves follow the dialect's trapezoidal speed profile along the straight line, limited
 per axis by the profile's speeds and accelerations (``[stage]`` for X and Y, ``[focus]``
 for Z). All timing is read from the given clock, so an accelerated clock speeds moves
-up. The focus drive has true backlash (``[sim.motion] z_backlash_um``): the mechanics
-follow the motor with play, so after a move downwards the objective sits higher than
-the motor position by the backlash, and after a move upwards the two agree. The
+up. The mechanics are not quite where the motors are (:mod:`drivers.sim.mechanics`):
+every axis has play (``[sim.motion] x_backlash_um``, ``y_backlash_um``,
+``z_backlash_um``), so after a move downwards an axis sits higher than its motor by the
+backlash and after a move upwards the two agree; x and y moves stop with a little
+scatter and ring for a while after they end. The
 mechanical travel is wider than the profile's soft limits by ``travel_margin_um``; on z
 the objective hits the vessel ``z_crash_margin_um`` above ``z_safe_max_um``. A move
 whose end lies outside the travel is refused with no motion (``Error:`` in the RepRap
@@ -90,6 +92,7 @@ from drivers.gcode.dialect import (
     trapezoid_duration_s,
     trapezoid_travel_um,
 )
+from drivers.sim.mechanics import StageMechanics
 
 if TYPE_CHECKING:
     from drivers.clock import Clock
@@ -167,15 +170,6 @@ class Refused(Exception):
     """A command the board refuses; its text is the dialect's refusal."""
 
 
-def _play(mech_z_um: float, motor_z_um: float, backlash_um: float) -> float:
-    """Mechanics of a drive with play: they lie between the motor and motor + backlash.
-
-    Moving up pushes the mechanics along at the motor position; moving down they trail
-    above it by the backlash; on reversal the motor crosses the gap before they follow.
-    """
-    return min(max(mech_z_um, motor_z_um), motor_z_um + backlash_um)
-
-
 @dataclasses.dataclass(slots=True)
 class _Segment:
     start: Vec
@@ -242,6 +236,7 @@ class GcodeEmulator:
         link_dir: str | Path | None = None,
         dialect: str = "reprap",
         busy_interval_s: float = 2.0,
+        seed: int = 0,
     ) -> None:
         if dialect not in DIALECTS:
             raise ValueError(f"unknown dialect {dialect!r}; one of {', '.join(DIALECTS)}")
@@ -264,7 +259,7 @@ class GcodeEmulator:
 
         self._lock = threading.RLock()
         self._motor: Vec = (first.x_um, first.y_um, first.z_um)
-        self._mech_z_um = first.z_um
+        self._mechanics = StageMechanics(motion, self._motor, seed=seed)
         self._queue: list[_Segment] = []
         # The board has been homed before: its coordinates are the stage coordinates.
         self._offset: Vec = (0.0, 0.0, 0.0)
@@ -391,8 +386,12 @@ class GcodeEmulator:
         with self._lock:
             now = self._clock.now()
             self._advance(now)
-            motor = self._motor_at(now)
-            return Position(motor[0], motor[1], self._mech_for(motor))
+            return Position(*self._mechanics.at(self._motor_at(now), now))
+
+    @property
+    def mechanics(self) -> StageMechanics:
+        """The simulated mechanics (play, stopping scatter, ringing): ground truth for tests."""
+        return self._mechanics
 
     def lamp_level(self, channel: int = 0) -> float:
         """Level 0..1 of lamp output ``channel`` (a PWM output; grbl: 0 spindle, 1 flood, 2 mist)."""
@@ -440,7 +439,7 @@ class GcodeEmulator:
             if self._queue and self._queue[0].stalled:
                 seg = self._queue[0]
                 frozen = seg.at(now)
-                self._mech_z_um = self._mech_for(frozen)
+                self._mechanics.stop(frozen)
                 self._queue[0] = dataclasses.replace(seg, start=frozen, t0_s=now, stalled=False)
                 self._retime(now)
 
@@ -583,23 +582,19 @@ class GcodeEmulator:
         while self._queue and self._queue[0].end_s <= now:
             seg = self._queue.pop(0)
             self._motor = seg.end
-            self._mech_z_um = _play(self._mech_z_um, seg.end[2], self._motion.z_backlash_um)
+            self._mechanics.finish(seg.start, seg.end, seg.end_s)
 
     def _motor_at(self, now: float) -> Vec:
         if self._queue and self._queue[0].t0_s <= now:
             return self._queue[0].at(now)
         return self._motor
 
-    def _mech_for(self, motor: Vec) -> float:
-        # Each move is monotonic in z, so the play evaluated from the move's start is exact.
-        return _play(self._mech_z_um, motor[2], self._motion.z_backlash_um)
-
     def _interrupt(self) -> None:
         """Stop all motion where it is now (reset, emergency stop)."""
         now = self._clock.now()
         self._advance(now)
         motor = self._motor_at(now)
-        self._mech_z_um = self._mech_for(motor)
+        self._mechanics.stop(motor)
         self._motor = motor
         self._queue.clear()
 
@@ -676,10 +671,9 @@ class GcodeEmulator:
         with self._lock:
             if self._epoch != epoch:
                 return False
-            # The switch is found on the way down, then the axis backs off upwards: the
-            # play is taken up from below, so mechanics and motor agree at home.
-            if axes[2]:
-                self._mech_z_um = self._motor[2]
+            # The switches are found on the way down, then the axes back off upwards: the
+            # play is taken up from below, so mechanics and motors agree at home.
+            self._mechanics.take_up(self._motor, tuple(axes))  # type: ignore[arg-type]
             self._offset = tuple(0.0 if homed else o for homed, o in zip(axes, self._offset))  # type: ignore[assignment]
             return True
 
@@ -691,7 +685,7 @@ class GcodeEmulator:
             return
         seg = self._queue[0]
         frozen = seg.at(now)
-        self._mech_z_um = self._mech_for(frozen)
+        self._mechanics.stop(frozen)
         self._motor = frozen
         self._queue[0] = dataclasses.replace(seg, start=frozen, t0_s=math.inf)
         for later in self._queue[1:]:

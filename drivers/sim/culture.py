@@ -550,11 +550,17 @@ class Culture:
             (cells.granule_xy_um[index], cells.granule_r_um[index], GRANULE_OPD_UM),
         ):
             present = radius > 0
-            col = np.rint((xy[present][:, 0] - origin_x_um) / dx_um).astype(np.int64)
-            row = np.rint((xy[present][:, 1] - origin_y_um) / dx_um).astype(np.int64)
-            ok = (col >= 0) & (col < shape[1]) & (row >= 0) & (row < shape[0])
-            volume = (value * np.pi * radius[present] ** 2 / dx_um**2).astype(np.float32)
-            np.add.at(spots, (row[ok], col[ok]), volume[ok])
+            # Shared between the four nearest pixels (bilinear weights), so a spot moves
+            # with the field by fractions of a pixel too, as a real one would.
+            fc = (xy[present][:, 0] - origin_x_um) / dx_um
+            fr = (xy[present][:, 1] - origin_y_um) / dx_um
+            c0, r0 = np.floor(fc).astype(np.int64), np.floor(fr).astype(np.int64)
+            wc, wr = fc - c0, fr - r0
+            volume = value * np.pi * radius[present] ** 2 / dx_um**2
+            for dr, dc, w in ((0, 0, (1 - wr) * (1 - wc)), (0, 1, (1 - wr) * wc), (1, 0, wr * (1 - wc)), (1, 1, wr * wc)):
+                col, row = c0 + dc, r0 + dr
+                ok = (col >= 0) & (col < shape[1]) & (row >= 0) & (row < shape[0])
+                np.add.at(spots, (row[ok], col[ok]), (volume * w)[ok].astype(np.float32))
         bottom = self.well_bottom(origin_x_um, origin_y_um, shape, dx_um)
         if bottom is not None:
             label[~bottom] = 0

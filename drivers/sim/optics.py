@@ -358,9 +358,12 @@ class PhaseContrastImager:
             self._defocus[key] = transfers
         return transfers
 
-    def image(self, spectrum: np.ndarray, dz_um: float) -> np.ndarray:
+    def image(self, spectrum: np.ndarray, dz_um: float, *, shift_px: tuple[float, float] = (0.0, 0.0)) -> np.ndarray:
         """Intensity on the pixel grid (float32, direct light of an empty field = tau^2) for the
-        object whose :meth:`spectrum` is given, propagated by ``dz_um``."""
+        object whose :meth:`spectrum` is given, propagated by ``dz_um``, its content moved by
+        ``shift_px`` = (columns, rows). The intensity is band-limited below the grid's Nyquist
+        frequency, so a linear phase on its spectrum (Fourier shift theorem) moves it by
+        fractions of a pixel exactly."""
         acc = np.zeros(self.opt_shape, np.float32)
         for (box, _, _, _), transfer in zip(self._sources, self._transfers(dz_um)):
             buf = np.zeros(self.opt_shape, np.complex64)
@@ -373,6 +376,10 @@ class PhaseContrastImager:
         padded = np.zeros((ny, nx // 2 + 1), np.complex64)
         for (src, dst), mtf in zip(self._pad_rows, self._pad_mtf):
             np.multiply(half[src, self._pad_cols], mtf, out=padded[dst, self._pad_cols])
+        if shift_px != (0.0, 0.0):
+            fy = sfft.fftfreq(ny).astype(np.float32)[:, None]
+            fx = sfft.rfftfreq(nx).astype(np.float32)[None, :]
+            padded *= np.exp(np.complex64(-2j * np.pi) * (fx * np.float32(shift_px[0]) + fy * np.float32(shift_px[1])))
         return sfft.irfft2(padded, s=self.shape, workers=FFT_WORKERS).astype(np.float32, copy=False)
 
     def intensity(self, field: np.ndarray, dz_um: float) -> np.ndarray:

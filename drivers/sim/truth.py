@@ -11,6 +11,8 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from drivers.sim.mechanics import Ringing
+
 if TYPE_CHECKING:
     from drivers.sim.controller import GcodeEmulator
     from drivers.sim.world import SimWorld
@@ -50,3 +52,21 @@ class SimTruth:
 
     def well_coverage(self, well: str, t_s: float) -> float | None:
         return self.world.true_well_coverage(well, t_s)
+
+    def image_px_per_um(self) -> np.ndarray | None:
+        return self.world.mount.image_px_per_um
+
+    def camera_geometry(self) -> dict[str, float | bool] | None:
+        mount = self.world.mount
+        # The simulated stage's axes are square; the camera is turned and scaled, not sheared.
+        return {"pixel_size_um": mount.pixel_um, "rotation_deg": mount.rotation_deg, "skew_deg": 0.0, "mirrored": mount.mirrored}
+
+    def backlash_um(self) -> dict[str, float] | None:
+        m = self.world.sim.motion
+        return {"x": m.x_backlash_um, "y": m.y_backlash_um, "z": m.z_backlash_um}
+
+    def repeatability_um(self) -> float | None:
+        return self.world.sim.motion.repeatability_um
+
+    def settle_ms(self, tolerance_um: float) -> float | None:
+        return 1000.0 * Ringing.of(self.world.sim.motion).settle_s(tolerance_um)

@@ -5,9 +5,13 @@ given time, imaged in phase contrast with the given defocus, lit unevenly, and r
 by the EMVA 1288 sensor model. Everything else here is ground truth for tests and for
 truth-beside-estimate reports.
 
-Frame geometry: the stage position (x_um, y_um) is the centre of the field of view; image
-columns run along +x and rows along +y, one pixel = camera_pixel_um / magnification in the
-sample. Times ``t_s`` are seconds since the Unix epoch on the simulated clock; the world
+Frame geometry: the stage position (x_um, y_um) is the centre of the field of view. The
+camera sits as ``[sim.camera_mount]`` says (:mod:`drivers.sim.mount`): one pixel is
+``pixel_um`` in the sample, the profile's camera_pixel_um / magnification off by
+pixel_size_error_percent, and the image is turned by rotation_deg against the stage axes
+(perhaps mirrored). With a perfect mount image columns run along +x and rows along +y.
+The sample is rendered on a grid aligned with the stage axes and the camera's view of it
+is taken from that grid. Times ``t_s`` are seconds since the Unix epoch on the simulated clock; the world
 starts at ``[sim] start_time`` (``t0_s``). The focal plane is taken at the field centre
 (its tilt across one field is a fraction of a um); the culture advances in 10 s steps.
 
@@ -36,6 +40,7 @@ from drivers.options import ConfigError
 from drivers.sim.culture import Culture
 from drivers.sim.focal import FocalPlane
 from drivers.sim.illumination import Illumination
+from drivers.sim.mount import CameraMount
 from drivers.sim.optics import PhaseContrastImager, PhaseContrastOptics
 from drivers.sim.plate import PlateLayout
 from drivers.sim.sensor import Sensor
@@ -90,7 +95,8 @@ class SimWorld:
             raise ConfigError(profile.path, "sim.plate", "empty_wells", str(exc)) from None
         cam, opt = profile.camera, profile.optics
         self.shape = (cam.height_px, cam.width_px)
-        self.pixel_um = opt.pixel_size_um
+        self.mount = CameraMount(sim.camera_mount, opt.pixel_size_um)
+        self.pixel_um = self.mount.pixel_um  # the true pitch in the sample, not the profile's
         self.wavelength_um = opt.wavelength_nm / 1000.0
         self.focal = FocalPlane(sim.focal_plane, self.plate)
         self.culture = Culture(sim.culture, self.plate, sim.seed)
@@ -109,7 +115,11 @@ class SimWorld:
             annulus_width_fraction=sim.optics.annulus_width_fraction,
         )
         pad = math.ceil(PAD_MIN_UM / self.pixel_um)
-        self.grid_shape = (smooth_length(cam.height_px + 2 * pad), smooth_length(cam.width_px + 2 * pad))
+        # A turned camera sees a slightly larger patch of the stage-aligned grid.
+        half_w, half_h = self.mount.grid_half_extent_px(self.shape)
+        span_w = cam.width_px if self.mount.square else math.ceil(2.0 * half_w) + 2
+        span_h = cam.height_px if self.mount.square else math.ceil(2.0 * half_h) + 2
+        self.grid_shape = (smooth_length(span_h + 2 * pad), smooth_length(span_w + 2 * pad))
         self._crop = (
             slice((self.grid_shape[0] - cam.height_px) // 2, (self.grid_shape[0] - cam.height_px) // 2 + cam.height_px),
             slice((self.grid_shape[1] - cam.width_px) // 2, (self.grid_shape[1] - cam.width_px) // 2 + cam.width_px),
@@ -118,7 +128,7 @@ class SimWorld:
         self.frame_counter = 0
         self._lock = threading.RLock()
         # Per field only what later frames need: the true cell mask and the object's spectrum.
-        self._fields: OrderedDict[tuple[float, float, float], tuple[np.ndarray, np.ndarray]] = OrderedDict()
+        self._fields: OrderedDict[tuple[int, int, float], tuple[np.ndarray, np.ndarray]] = OrderedDict()
 
     # -- ground truth ---------------------------------------------------------------------
 
@@ -160,10 +170,25 @@ class SimWorld:
 
     # -- imaging --------------------------------------------------------------------------
 
+    def _grid_origin(self, x_um: float, y_um: float) -> tuple[int, int, float, float]:
+        """The grid for a field centred on (x, y): its first pixel on the plate-wide lattice of
+        pixels (column, row), and how far (px) the field's true origin lies beyond it.
+
+        Rasterising on one lattice and moving the image by the remainder (:meth:`render_intensity`)
+        keeps a frame an exact translate of its neighbours: the rasterised outlines and spots
+        snap to pixels, which would otherwise shift the content by up to half a pixel."""
+        ny, nx = self.grid_shape
+        fx = (x_um - (nx - 1) / 2.0 * self.pixel_um) / self.pixel_um
+        fy = (y_um - (ny - 1) / 2.0 * self.pixel_um) / self.pixel_um
+        ix, iy = round(fx), round(fy)
+        return ix, iy, fx - ix, fy - iy
+
     def _field(self, x_um: float, y_um: float, t_s: float) -> tuple[np.ndarray, np.ndarray]:
-        """The culture under the field (padded grid) and its spectrum for the imager, cached."""
+        """The culture under the field (padded grid on the pixel lattice) and its spectrum for
+        the imager, cached."""
         t_rel = self.culture.quantise_time(self.rel_s(t_s))
-        key = (round(x_um, 3), round(y_um, 3), t_rel)
+        ix, iy, _, _ = self._grid_origin(x_um, y_um)
+        key = (ix, iy, t_rel)
         with self._lock:
             hit = self._fields.get(key)
             if hit is not None:
@@ -172,13 +197,13 @@ class SimWorld:
             while len(self._fields) >= KEEP_FIELDS:
                 self._fields.popitem(last=False)
             ny, nx = self.grid_shape
-            origin_x = x_um - (nx - 1) / 2.0 * self.pixel_um
-            origin_y = y_um - (ny - 1) / 2.0 * self.pixel_um
+            origin_x = ix * self.pixel_um
+            origin_y = iy * self.pixel_um
             x1 = origin_x + (nx - 1) * self.pixel_um
             y1 = origin_y + (ny - 1) * self.pixel_um
             cells = self.culture.cells_in_rect(origin_x, origin_y, x1, y1, t_rel)
             maps = self.culture.rasterize(cells, origin_x, origin_y, self.grid_shape, self.pixel_um)
-            mask = np.ascontiguousarray(maps.label[self._crop] > 0)
+            mask = self.mount.to_frame(maps.label > 0, self.shape, self._crop, nearest=True)
             field = self.culture.transmission(maps, self.wavelength_um)
             del maps  # the big per-pixel maps are not kept: only the mask and the spectrum
             spectrum = self.imager.spectrum(field, consume=True)
@@ -190,10 +215,11 @@ class SimWorld:
         """Noiseless optical image (float32, frame shape) for incident light of intensity 1:
         an empty field is tau^2 (the ring's attenuation of the direct light)."""
         _, spectrum = self._field(x_um, y_um, t_s)
+        _, _, rem_x, rem_y = self._grid_origin(x_um, y_um)
         dz = z_um - self.true_focus_z_um(x_um, y_um, t_s)
         with self._lock:
-            image = self.imager.image(spectrum, -dz)
-        return np.ascontiguousarray(image[self._crop])
+            image = self.imager.image(spectrum, -dz, shift_px=(-rem_x, -rem_y))
+        return self.mount.to_frame(image, self.shape, self._crop)
 
     def photons(self, intensity: np.ndarray, *, exposure_ms: float, lamp_level: float) -> np.ndarray:
         """Mean photons per pixel: profile's photon rate at the field centre x lamp x illumination x optics."""
