@@ -34,8 +34,8 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, PreviewQuery
-from daemon.errors import Busy
+from daemon.archive import Archive, AlertsQuery, ExportFile, ExportsMade, FramePage, FramesQuery, MovieQuery, PreviewQuery
+from daemon.errors import Busy, NotFound
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
@@ -255,14 +255,47 @@ class Station:
     def well_here(self, pos: Position | None) -> str | None:
         """The well under the objective by the vessel-to-stage map; None between wells, off
         the vessel, or while no map has been taught (blocking: reads the map)."""
-        from daemon.vessels.stage_map import well_at_stage
+        where = self.on_vessel(pos)
+        return None if where is None else where["well"]
+
+    def on_vessel(self, pos: Position | None) -> dict[str, Any] | None:
+        """Where the objective is over the mapped vessel: the vessel's name, the point in
+        vessel mm, whether it lies on the vessel at all, and the well there (None between
+        wells). None without a position or a map (blocking: reads the map)."""
+        from daemon.vessels.stage_map import mapped_vessel
 
         if pos is None:
             return None
         try:
-            return well_at_stage(self.data_dir, self.profile, pos.x_um, pos.y_um)
+            smap, vessel = mapped_vessel(self.data_dir, self.profile)
         except ConfigError:
             return None
+        x_mm, y_mm = smap.to_vessel_mm(pos.x_um, pos.y_um)
+        inside = 0.0 <= x_mm <= vessel.length_mm and 0.0 <= y_mm <= vessel.width_mm
+        return {"vessel": vessel.name, "x_mm": round(x_mm, 4), "y_mm": round(y_mm, 4), "on_vessel": inside,
+                "well": smap.well_at(vessel, pos.x_um, pos.y_um) if inside else None}
+
+    def vessel_drawing(self, name: str | None) -> dict[str, Any]:
+        """A vessel's geometry for drawing it to scale (mm from its top-left outer corner):
+        the named one, or the one the stage map was taught on; with whether it is mapped
+        (blocking: reads the vessels files and the map)."""
+        from daemon.vessels.geometry import get_vessel
+        from daemon.vessels.stage_map import mapped_vessel
+
+        mapped: str | None = None
+        try:
+            mapped = mapped_vessel(self.data_dir, self.profile)[1].name
+        except ConfigError:
+            mapped = None
+        if name is None:
+            if mapped is None:
+                raise NotFound("no vessel is mapped to the stage yet; name one, e.g. /api/v1/vessels/96-well")
+            name = mapped
+        try:
+            vessel = get_vessel(name)
+        except ConfigError as exc:
+            raise NotFound(str(exc)) from None
+        return {**vessel.to_dict(), "mapped": vessel.name == mapped}
 
     async def autofocus(self, request: AutofocusRequest) -> FocusDone:
         """One cold autofocus here; its focus points stream as events while it runs."""
@@ -470,6 +503,12 @@ class Station:
     async def well_readings(self, tl_id: int, well: str) -> list[WellReading]:
         return await asyncio.to_thread(self.archive.well_readings, tl_id, well)
 
+    async def movie(self, tl_id: int, position: str, query: MovieQuery) -> Path:
+        return await asyncio.to_thread(self.archive.movie, tl_id, position, query)
+
+    async def vessel(self, name: str | None) -> dict[str, Any]:
+        return await asyncio.to_thread(self.vessel_drawing, name)
+
     async def exports(self, tl_id: int) -> list[ExportFile]:
         return await asyncio.to_thread(self.archive.exports, tl_id)
 
@@ -501,6 +540,7 @@ class Station:
         p = self.profile
         scope = self.scope
         pos = scope.last_position
+        here = self.on_vessel(pos)
         truth = None
         if scope.truth.known and pos is not None:
             true_z_um = scope.true_focus_z_um()
@@ -513,7 +553,8 @@ class Station:
             "holder": scope.holder,
             "manual_control": {"allowed": self.refusal() is None, "reason": self.refusal()},
             "position_um": position_json(pos),
-            "well": self.well_here(pos),
+            "well": (here or {}).get("well"),
+            "vessel_position": here,
             "limits_um": {
                 "x": [p.stage.x_min_um, p.stage.x_max_um],
                 "y": [p.stage.y_min_um, p.stage.y_max_um],
