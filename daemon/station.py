@@ -75,6 +75,9 @@ LIVE_YIELD_S = 3.0
 REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
+# Stage points this close to a vessel's outer edge count as off it (the stage map is rounded to 1 nm;
+# a tenth of a millimetre is well inside a plate's skirt).
+ON_VESSEL_EDGE_MM = 0.1
 ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "abort": TimelapseState.ABORTED}
 
 
@@ -271,7 +274,9 @@ class Station:
         except ConfigError:
             return None
         x_mm, y_mm = smap.to_vessel_mm(pos.x_um, pos.y_um)
-        inside = 0.0 <= x_mm <= vessel.length_mm and 0.0 <= y_mm <= vessel.width_mm
+        # The outer edge itself (where a homed stage often sits) counts as off, within the map's rounding.
+        edge = ON_VESSEL_EDGE_MM
+        inside = edge < x_mm < vessel.length_mm - edge and edge < y_mm < vessel.width_mm - edge
         return {"vessel": vessel.name, "x_mm": round(x_mm, 4), "y_mm": round(y_mm, 4), "on_vessel": inside,
                 "well": smap.well_at(vessel, pos.x_um, pos.y_um) if inside else None}
 
