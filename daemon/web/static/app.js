@@ -459,8 +459,8 @@ function renderTiming() {
   const est = ui.lastEstimate;
   let text = `${plural(t.count, "time point")}, one every ${formatDuration(t.interval_s)} for ${formatDuration(t.duration_s)}`;
   if (est) {
-    text += `; about ${formatDuration(Math.max(1, Math.round(est.time_point_s)))} per time point, ` +
-      `${formatDuration(Math.round(est.time_point_s * t.count))} of imaging in all`;
+    text += `; about ${ago(est.time_point_s)} per time point, ` +
+      `${ago(est.time_point_s * t.count)} of imaging in all`;
   }
   out.textContent = text;
 }
@@ -871,7 +871,7 @@ function showFrame(i) {
   img.dataset.tp = String(f.tp);
   $("viewer-scrub").value = String(vw.index);
   $("viewer-pos").textContent = `time point ${f.tp} · ${vw.index + 1} of ${vw.frames.length}`;
-  $("viewer-time").textContent = `${formatDuration(Math.round(f.t_s - d.t0_s))} · ${clock(f.t_s)}`;
+  $("viewer-time").textContent = `${ago(f.t_s - d.t0_s)} after the start · ${clock(f.t_s)}`;
   $("viewer-tiff").href = `${API}/timelapses/${d.id}/frames/${f.id}`;
   drawScaleBar();
 }
@@ -976,12 +976,13 @@ const MIN_FIT_SPAN_DOUBLINGS = 0.5;
 function growthNote(label, w) {
   const g = w.growth;
   const span = w.t_h.length ? w.t_h[w.t_h.length - 1] - w.t_h[0] : 0;
-  const enough = g && g.ok && g.doubling_time_h && span >= Math.max(MIN_FIT_SPAN_H, MIN_FIT_SPAN_DOUBLINGS * g.doubling_time_h);
-  if (enough) {
+  const need = Math.max(MIN_FIT_SPAN_H, g && g.ok && g.doubling_time_h ? MIN_FIT_SPAN_DOUBLINGS * g.doubling_time_h : 0);
+  if (span < need) return `${label}: not enough time yet for a doubling time (${ago(span * 3600)} of data, needs ${ago(need * 3600)})`;
+  if (g && g.ok && g.doubling_time_h) {
     const err = g.doubling_time_err_h ? ` ± ${g.doubling_time_err_h.toFixed(1)}` : "";
     return `${label}: doubling time ${g.doubling_time_h.toFixed(1)}${err} h (${g.model})`;
   }
-  return `${label}: not enough time yet for a doubling time (${formatDuration(Math.round(span * 3600))} of data; needs at least ${MIN_FIT_SPAN_H} h)`;
+  return `${label}: ${g ? g.note : "no growth fit yet"}`;
 }
 
 function renderTrends() {
@@ -1201,7 +1202,9 @@ function wire() {
   $("tl-resume").addEventListener("click", () => control("resume"));
   $("tl-abort").addEventListener("click", () => control("abort"));
   $("tl-export").addEventListener("click", exportTimelapse);
-  for (const id of ["tl-f-interval", "tl-f-duration"]) $(id).addEventListener("input", () => { renderTiming(); scheduleCheck(); });
+  for (const id of ["tl-f-interval", "tl-f-duration"]) {
+    $(id).addEventListener("input", () => { ui.lastEstimate = null; renderTiming(); scheduleCheck(); });
+  }
   $("tl-f-wells").addEventListener("change", () => { selectionFromField(); scheduleCheck(); });
   $("tl-f-vessel").addEventListener("change", () => loadVessel($("tl-f-vessel").value.trim()));
   $("tl-f-sites").addEventListener("change", scheduleCheck);
