@@ -62,6 +62,13 @@ async def click_well(page, well: str, modifiers: int = 0) -> None:
 SHIFT, CTRL = 8, 2  # CDP modifier bits
 
 
+async def stop_live(page, srv) -> None:
+    """End the live stream before the daemon shuts down, so no frame is mid-render at exit."""
+    await page.evaluate("document.getElementById('live-toggle').click()")
+    await wait_for(lambda: srv.station.live.viewers == 0, timeout_s=10)
+    await asyncio.sleep(0.5)
+
+
 async def signed_in(page, srv) -> None:
     await page.navigate(f"{srv.url}#token={srv.token}")
     await page.wait_for("document.getElementById('signin-btn').textContent === 'Signed in'")
@@ -197,6 +204,7 @@ async def test_map_plan_with_conditions_viewer_and_movie(tmp_path):
         assert len(decoded) == 3
         assert decoded[0].shape[1] == profile.camera.width_px  # full width (320 px is under the 1024 px cap)
         assert page.errors() == []
+        await stop_live(page, srv)
 
 
 async def test_phone_layout_puts_status_and_alerts_first(tmp_path):
@@ -248,3 +256,4 @@ async def test_phone_layout_puts_status_and_alerts_first(tmp_path):
             import base64
             (folder / "phone-first-screen.png").write_bytes(base64.b64decode(shot["data"]))
         assert page.errors() == []
+        await stop_live(page, srv)

@@ -238,6 +238,11 @@ class PlanOptions:
             raise ValueError("name: must not be empty")
 
 
+def counted(n: int, noun: str) -> str:
+    """'1 well', '3 wells': messages a person reads count in words that agree."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
+
+
 def count_from_duration(duration_s: float, interval_s: float) -> int:
     """Time points at t0, t0 + interval, ... up to and including t0 + duration."""
     return int(math.floor(duration_s / interval_s + 1e-9)) + 1
@@ -478,7 +483,7 @@ class PlanEstimate:
 
     def summary(self) -> str:
         return (
-            f"{self.positions} positions, about {self.per_position_s:.2f} s each plus {self.travel_s:.1f} s travel: "
+            f"{counted(self.positions, 'position')}, about {self.per_position_s:.2f} s each plus {self.travel_s:.1f} s travel: "
             f"{self.time_point_s:.1f} s per time point (first: {self.first_time_point_s:.1f} s)"
         )
 
@@ -583,7 +588,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         more = f" and {len(outside) - 4} more" if len(outside) > 4 else ""
         raise ConfigError(
             where, "", "wells",
-            f"{len(outside)} positions lie outside the stage limits x {s.x_min_um:g}..{s.x_max_um:g}, "
+            f"{counted(len(outside), 'position')} {'lies' if len(outside) == 1 else 'lie'} outside the stage limits x {s.x_min_um:g}..{s.x_max_um:g}, "
             f"y {s.y_min_um:g}..{s.y_max_um:g} um: {names}{more}; check the wells and the stage map (phasewatch vessel teach)",
         )
     est = estimate_plan(profile, plan, positions)
@@ -592,7 +597,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         need = math.ceil(est.time_point_s / INTERVAL_HEADROOM)
         raise ConfigError(
             where, "", "interval_s",
-            f"a time point needs about {est.time_point_s:.0f} s ({est.positions} positions x "
+            f"a time point needs about {est.time_point_s:.0f} s ({counted(est.positions, 'position')} x "
             f"{est.per_position_s:.2f} s + {est.travel_s:.1f} s travel), more than interval_s = {plan.interval_s:g}; "
             f"raise interval_s to at least {need} or image fewer positions",
         )
@@ -612,7 +617,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         tight = [n for n in plan.wells if not _fits([(0.0, 0.0)], vessel.well(n), fw, fh, max(fw, fh))]
         if tight:
             warnings.append(
-                f"the {fw:.0f} x {fh:.0f} um field comes within one field of the wall in {len(tight)} wells "
+                f"the {fw:.0f} x {fh:.0f} um field comes within one field of the wall in {counted(len(tight), 'well')} "
                 f"(e.g. {tight[0]}); expect meniscus shading at the frame edges"
             )
     if profile.sim is not None:
