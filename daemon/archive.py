@@ -69,6 +69,13 @@ class ExportRequest:
                               choices=("raw", "corrected"))
 
 
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class MovieQuery:
+    fps: float | None = option(None, doc="time points per second of film; leave out for about ten seconds in all",
+                               min=0.5, max=60.0)
+    width: int = option(1024, doc="reduce the frames to this width", min=MIN_WIDTH_PX, max=MAX_WIDTH_PX, unit="px")
+
+
 @dataclasses.dataclass(frozen=True)
 class FramePage:
     total: int
@@ -249,8 +256,15 @@ class Archive:
 
     def series(self, tl_id: int) -> dict[str, Any]:
         """Focus score and confluence over time per position and well, with growth fits."""
+        from daemon.timelapse.plan import Plan
+
         row = self.timelapse(tl_id)
-        return {"id": tl_id, "t0_s": row["t0_s"], **plot_series(self.index, tl_id)}
+        out = {"id": tl_id, "t0_s": row["t0_s"], **plot_series(self.index, tl_id)}
+        plan = Plan.from_dict(json.loads(row["plan_json"])["plan"], file=f"time-lapse {tl_id}")
+        for well, w in out["wells"].items():
+            w["condition"] = plan.condition_of(well).label
+        out["conditions"] = {w: {"label": c.label, "notes": c.notes} for w, c in plan.conditions.items()}
+        return out
 
     def well_readings(self, tl_id: int, well: str) -> list[WellReading]:
         """One well's readings over the time-lapse (see :mod:`daemon.culture.readings`);
@@ -263,6 +277,35 @@ class Archive:
         if name not in planned:
             raise NotFound(f"well {name} is not in time-lapse {tl_id}; its wells are {', '.join(sorted(planned)) or 'none'}")
         return well_readings(self.index, tl_id, name)
+
+    def movie(self, tl_id: int, position: str, query: MovieQuery) -> Path:
+        """The position's analysed plane over time as an MP4 (H.264) in the export folder,
+        made afresh from the frames stored so far (:mod:`daemon.storage.movie`)."""
+        from daemon.storage.movie import MovieFrame, default_fps, write_movie
+        from daemon.timelapse.plan import Plan
+        from drivers import atomic
+
+        row = self.timelapse(tl_id)
+        spec = json.loads(row["plan_json"])
+        keys = [p["key"] for p in spec.get("positions", [])]
+        if position not in keys:
+            raise NotFound(f"time-lapse {tl_id} has no position {position!r}; its positions are {', '.join(keys[:20]) or 'none'}")
+        plane = Plan.from_dict(spec["plan"], file=f"time-lapse {tl_id}").analysis_plane
+        rows = [f for f in self.index.frames(tl_id) if f["key"] == position and f["z_index"] == plane
+                and f["status"] == FrameState.OK]
+        kind = "corrected" if any(f["kind"] == "corrected" for f in rows) else "raw"
+        chosen = [f for f in rows if f["kind"] == kind]
+        if not chosen:
+            raise NotFound(f"position {position} of time-lapse {tl_id} has no frames yet")
+        frames = [MovieFrame(inside(self.data_dir, f["path"]), f["bit_depth"], f["t_s"] - row["t0_s"]) for f in chosen]
+        folder = self.export_folder(tl_id)
+        atomic.make_dirs(folder)
+        out = folder / f"movie-{position}.mp4"
+        part = folder / f".movie-{position}.part.mp4"
+        fps = query.fps if query.fps is not None else default_fps(len(frames))
+        write_movie(frames, part, pixel_size_um=chosen[0]["pixel_size_um"], fps=fps, width_px=query.width)
+        part.replace(out)
+        return out
 
     # -- exports -------------------------------------------------------------------------
 

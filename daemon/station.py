@@ -36,8 +36,10 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from daemon.archive import Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, PreviewQuery
-from daemon.errors import Busy, NoSpace
+from daemon.archive import (
+    Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, MovieQuery, PreviewQuery,
+)
+from daemon.errors import Busy, NoSpace, NotFound
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
@@ -78,6 +80,9 @@ LIVE_YIELD_S = 3.0
 REQUEST_WAIT_S = 10.0
 # Real seconds a shutdown waits for the position in progress before abandoning it.
 SHUTDOWN_WAIT_S = 20.0
+# Stage points this close to a vessel's outer edge count as off it (the stage map is rounded to 1 nm;
+# a tenth of a millimetre is well inside a plate's skirt).
+ON_VESSEL_EDGE_MM = 0.1
 ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "abort": TimelapseState.ABORTED}
 # A write that fails with one of these failed for want of space, not for a broken disk.
 NO_SPACE_ERRNOS = (errno.ENOSPC, errno.EDQUOT)
@@ -291,14 +296,49 @@ class Station:
     def well_here(self, pos: Position | None) -> str | None:
         """The well under the objective by the vessel-to-stage map; None between wells, off
         the vessel, or while no map has been taught (blocking: reads the map)."""
-        from daemon.vessels.stage_map import well_at_stage
+        where = self.on_vessel(pos)
+        return None if where is None else where["well"]
+
+    def on_vessel(self, pos: Position | None) -> dict[str, Any] | None:
+        """Where the objective is over the mapped vessel: the vessel's name, the point in
+        vessel mm, whether it lies on the vessel at all, and the well there (None between
+        wells). None without a position or a map (blocking: reads the map)."""
+        from daemon.vessels.stage_map import mapped_vessel
 
         if pos is None:
             return None
         try:
-            return well_at_stage(self.data_dir, self.profile, pos.x_um, pos.y_um)
+            smap, vessel = mapped_vessel(self.data_dir, self.profile)
         except ConfigError:
             return None
+        x_mm, y_mm = smap.to_vessel_mm(pos.x_um, pos.y_um)
+        # The outer edge itself (where a homed stage often sits) counts as off, within the map's rounding.
+        edge = ON_VESSEL_EDGE_MM
+        inside = edge < x_mm < vessel.length_mm - edge and edge < y_mm < vessel.width_mm - edge
+        return {"vessel": vessel.name, "x_mm": round(x_mm, 4), "y_mm": round(y_mm, 4), "on_vessel": inside,
+                "well": smap.well_at(vessel, pos.x_um, pos.y_um) if inside else None}
+
+    def vessel_drawing(self, name: str | None) -> dict[str, Any]:
+        """A vessel's geometry for drawing it to scale (mm from its top-left outer corner):
+        the named one, or the one the stage map was taught on; with whether it is mapped
+        (blocking: reads the vessels files and the map)."""
+        from daemon.vessels.geometry import get_vessel
+        from daemon.vessels.stage_map import mapped_vessel
+
+        mapped: str | None = None
+        try:
+            mapped = mapped_vessel(self.data_dir, self.profile)[1].name
+        except ConfigError:
+            mapped = None
+        if name is None:
+            if mapped is None:
+                raise NotFound("no vessel is mapped to the stage yet; name one, e.g. /api/v1/vessels/96-well")
+            name = mapped
+        try:
+            vessel = get_vessel(name)
+        except ConfigError as exc:
+            raise NotFound(str(exc)) from None
+        return {**vessel.to_dict(), "mapped": vessel.name == mapped}
 
     async def autofocus(self, request: AutofocusRequest) -> FocusDone:
         """One cold autofocus here; its focus points stream as events while it runs."""
@@ -507,6 +547,12 @@ class Station:
     async def well_readings(self, tl_id: int, well: str) -> list[WellReading]:
         return await asyncio.to_thread(self.archive.well_readings, tl_id, well)
 
+    async def movie(self, tl_id: int, position: str, query: MovieQuery) -> Path:
+        return await asyncio.to_thread(self.archive.movie, tl_id, position, query)
+
+    async def vessel(self, name: str | None) -> dict[str, Any]:
+        return await asyncio.to_thread(self.vessel_drawing, name)
+
     async def exports(self, tl_id: int) -> list[ExportFile]:
         return await asyncio.to_thread(self.archive.exports, tl_id)
 
@@ -550,6 +596,7 @@ class Station:
         p = self.profile
         scope = self.scope
         pos = scope.last_position
+        here = self.on_vessel(pos)
         truth = None
         if scope.truth.known and pos is not None:
             true_z_um = scope.true_focus_z_um()
@@ -562,7 +609,8 @@ class Station:
             "holder": scope.holder,
             "manual_control": {"allowed": self.refusal() is None, "reason": self.refusal()},
             "position_um": position_json(pos),
-            "well": self.well_here(pos),
+            "well": (here or {}).get("well"),
+            "vessel_position": here,
             "limits_um": {
                 "x": [p.stage.x_min_um, p.stage.x_max_um],
                 "y": [p.stage.y_min_um, p.stage.y_max_um],

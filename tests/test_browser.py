@@ -91,8 +91,9 @@ async def test_page_live_view_move_autofocus_and_demo_time_lapse(tmp_path):
         # The demo plan is filled in; time points an hour apart keep this run short at clock speed 1000.
         assert (await page.evaluate("document.getElementById('tl-f-name').value")).startswith("KVL-7")
         await page.evaluate("""(() => {
-          document.getElementById('tl-f-interval').value = 3600;
-          document.getElementById('tl-f-count').value = 2;
+          document.getElementById('tl-f-interval').value = '1 h';
+          document.getElementById('tl-f-duration').value = '1 h';
+          document.getElementById('tl-f-interval').dispatchEvent(new Event('input'));
           document.getElementById('tl-start').click();
         })()""")
         await page.wait_for("document.querySelectorAll('#well-grid .well-card').length === 3", timeout_s=90)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -403,3 +404,26 @@ async def test_move_estimate_matches_the_simulated_stage() -> None:
             measured = scope.clock.now() - t0
             expected = move_time_s(d, p.xy_speed_um_s, p.xy_accel_um_s2) + p.settle_ms / 1000.0
             assert expected * 0.97 <= measured <= expected + 0.3, (d, measured, expected)
+
+
+def test_conditions_per_well_are_strict_and_keep_the_plan_file_form():
+    from daemon.timelapse.plan import Plan, WellCondition
+
+    base = {"name": "KVL-7 dose check", "vessel": "96-well", "wells": "B2:B4", "interval_s": 1800, "count": 3}
+    plan = Plan.from_dict({**base, "conditions": [
+        {"wells": ["B2", "B4"], "label": "vehicle", "notes": "0.1 % DMSO"}, {"wells": "B3", "label": "R-17 5 uM"}]})
+    assert plan.condition_of("B2") == WellCondition("vehicle", "0.1 % DMSO")
+    assert plan.condition_of("B3") == WellCondition("R-17 5 uM", "")
+    assert plan.to_dict()["conditions"] == [
+        {"wells": ["B2", "B4"], "label": "vehicle", "notes": "0.1 % DMSO"}, {"wells": ["B3"], "label": "R-17 5 uM", "notes": ""}]
+    assert Plan.from_dict(plan.to_dict()) == dataclasses.replace(plan, source="plan")
+    assert "conditions" not in Plan.from_dict(base).to_dict()  # plans without conditions keep their old form
+    for conditions, words in (
+        ([{"wells": "C2", "label": "x"}], "[conditions[0]] wells: C2 not in the plan's wells"),
+        ([{"wells": "B2", "label": "a"}, {"wells": "B2:B3", "label": "b"}], "B2 already has condition 'a'"),
+        ([{"wells": "B2", "label": " "}], "label: must not be empty"),
+        ([{"wells": "B2", "label": "a", "dose": 5}], "unknown option"),
+        ([7], "must be a table"),
+    ):
+        with pytest.raises(ConfigError, match=re.escape(words)):
+            Plan.from_dict({**base, "conditions": conditions})

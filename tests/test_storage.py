@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import csv
+import dataclasses
 import errno
 import os
 import sqlite3
@@ -20,7 +22,7 @@ from daemon.storage.index import DuplicateFrame, Index, open_index
 from daemon.storage.ome import FrameMeta, encode_frame, read_frame
 from daemon.storage.reconcile import reconcile
 from daemon.storage.space import MB, SpaceGuard
-from daemon.timelapse.plan import Plan, ZStack
+from daemon.timelapse.plan import Plan, WellCondition, ZStack
 from drivers import atomic
 from tests.helpers import sim_profile
 
@@ -273,3 +275,35 @@ def test_exports_csv_and_ome_stacks(store: FrameStore, tmp_path: Path) -> None:
 def test_encode_refuses_colour_frames() -> None:
     with pytest.raises(ValueError, match="2-D"):
         encode_frame(np.zeros((4, 4, 3), np.uint8), _meta(1))
+
+
+def test_a_wells_condition_is_in_its_frames_ome_metadata_and_every_csv(store: FrameStore, tmp_path: Path) -> None:
+    from daemon.storage.export import export_csv
+
+    index = store.index
+    plan = Plan(
+        name="LR-0412 dose", vessel="96-well", wells=["B3", "B4"], sites_per_well=1, interval_s=600.0, count=2,
+        autofocus="track", z_stack=None, exposure_ms=20.0, gain_db=3.0, correction=False, save="raw",
+        conditions={"B3": WellCondition("R-17 5 uM", "added at 09:30, batch 4")},
+    )
+    positions = [{"key": f"{w}-1", "well": w, "site": 1, "x_um": 23380.0, "y_um": 20240.0} for w in ("B3", "B4")]
+    tl = index.create_timelapse(
+        name=plan.name, plan={"plan": plan.to_dict(), "positions": positions}, profile_path="hw_profiles/sim.toml",
+        profile_name="sim", created_s=1.77e9, t0_s=1.77e9, interval_s=600.0, count=2, n_positions=2, reserve_mb=1.0,
+    )
+    meta = dataclasses.replace(_meta(tl, key="B3-1"), timelapse_name=plan.name, condition="R-17 5 uM",
+                               condition_notes="added at 09:30, batch 4")
+    saved = store.save(_pixels(3), meta)
+    store.save(_pixels(4), dataclasses.replace(_meta(tl, key="B4-1"), timelapse_name=plan.name))
+    path = store.data_dir / saved.path
+    # Validated against the OME XSD by ome-types (as above); the label is a key of the frame's map annotation.
+    ome = ome_types.from_tiff(path, validate=True)
+    values = ome.structured_annotations.map_annotations[0].value
+    assert (values["condition"], values["condition_notes"]) == ("R-17 5 uM", "added at 09:30, batch 4")
+    assert read_frame(path)[1] == meta
+    export_csv(index, tl, tmp_path / "out")
+    for name, well_column in (("frames.csv", "well"), ("wells.csv", "well"), ("growth.csv", "well")):
+        rows = list(csv.DictReader((tmp_path / "out" / name).open(encoding="utf-8")))
+        by_well = {r[well_column]: (r["condition"], r["condition_notes"]) for r in rows}
+        assert by_well["B3"] == ("R-17 5 uM", "added at 09:30, batch 4"), name
+        assert by_well["B4"] == ("", ""), name

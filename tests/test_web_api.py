@@ -284,3 +284,67 @@ async def test_a_new_token_takes_effect_at_once_and_voids_the_old_one(tmp_path):
             assert r.status == 401
         async with srv.session.get(srv.u("/api/v1/status"), headers={"Authorization": f"Bearer {new_token}"}) as r:
             assert r.status == 200
+
+
+async def test_vessels_are_served_for_drawing_and_the_stage_is_placed_on_them(tmp_path):
+    from daemon.vessels.geometry import SLAS_LENGTH_MM, SLAS_WIDTH_MM
+
+    async with served(tmp_path) as srv:
+        async with srv.session.get(srv.u("/api/v1/vessel"), headers=srv.auth) as r:
+            assert r.status == 200
+            v = await r.json()
+        # ANSI/SLAS 1-2004 footprint and ANSI/SLAS 4-2004 96-well positions (A1 at 14.38, 11.24 mm, pitch 9 mm).
+        assert (v["name"], v["mapped"], v["length_mm"], v["width_mm"]) == ("96-well", True, SLAS_LENGTH_MM, SLAS_WIDTH_MM)
+        wells = {w["name"]: w for w in v["wells"]}
+        assert len(wells) == 96
+        assert (wells["A1"]["x_mm"], wells["A1"]["y_mm"]) == (14.38, 11.24)
+        assert (wells["H12"]["x_mm"], wells["H12"]["y_mm"]) == (14.38 + 11 * 9, 11.24 + 7 * 9)
+        async with srv.session.get(srv.u("/api/v1/vessels/24-well"), headers=srv.auth) as r:
+            assert r.status == 200
+            other = await r.json()
+            assert other["mapped"] is False and len(other["wells"]) == 24
+        async with srv.session.get(srv.u("/api/v1/vessels/no-such-plate"), headers=srv.auth) as r:
+            assert r.status == 404
+            assert "unknown vessel" in (await r.json())["error"]["message"]
+
+        async with srv.session.post(srv.u("/api/v1/stage/move"), headers=srv.auth, json={"well": "B3"}) as r:
+            assert r.status == 200
+        async with srv.session.get(srv.u("/api/v1/status"), headers=srv.auth) as r:
+            here = (await r.json())["vessel_position"]
+        assert here["well"] == "B3" and here["on_vessel"] is True
+        assert abs(here["x_mm"] - wells["B3"]["x_mm"]) < 0.01 and abs(here["y_mm"] - wells["B3"]["y_mm"]) < 0.01
+        async with srv.session.post(srv.u("/api/v1/stage/move"), headers=srv.auth, json={"x_um": 0, "y_um": 0}) as r:
+            assert r.status == 200
+        async with srv.session.get(srv.u("/api/v1/status"), headers=srv.auth) as r:
+            s = await r.json()
+        assert s["vessel_position"]["on_vessel"] is False and s["well"] is None
+
+
+async def test_a_position_movie_has_one_frame_per_time_point(tmp_path):
+    import imageio.v2 as imageio
+
+    from tests.web_support import QUICK_PLAN, wait_for
+
+    async with served(tmp_path) as srv:
+        plan = {**QUICK_PLAN, "conditions": [{"wells": "B2", "label": "vehicle", "notes": "0.1 % DMSO"}]}
+        async with srv.session.post(srv.u("/api/v1/timelapses"), headers=srv.auth, json=plan) as r:
+            assert r.status == 201, await r.text()
+            tl_id = (await r.json())["id"]
+        assert await wait_for(lambda: srv.station.active() is None, timeout_s=120)
+        base = f"/api/v1/timelapses/{tl_id}/positions"
+        async with srv.session.get(srv.u(f"{base}/B2-1/movie.mp4?fps=4"), headers=srv.auth) as r:
+            assert r.status == 200 and r.headers["Content-Type"] == "video/mp4"
+            (tmp_path / "m.mp4").write_bytes(await r.read())
+        reader = imageio.get_reader(tmp_path / "m.mp4", "ffmpeg")
+        assert reader.get_meta_data()["fps"] == 4.0
+        assert sum(1 for _ in reader.iter_data()) == QUICK_PLAN["count"]
+        reader.close()
+        async with srv.session.get(srv.u(f"{base}/Z9-1/movie.mp4"), headers=srv.auth) as r:
+            assert r.status == 404
+            assert "has no position 'Z9-1'" in (await r.json())["error"]["message"]
+        async with srv.session.get(srv.u(f"{base}/B2-1/movie.mp4?fps=0"), headers=srv.auth) as r:
+            assert r.status == 400
+        async with srv.session.get(srv.u(f"/api/v1/timelapses/{tl_id}/series"), headers=srv.auth) as r:
+            series = await r.json()
+        assert series["wells"]["B2"]["condition"] == "vehicle" and series["wells"]["B3"]["condition"] == ""
+        assert series["conditions"] == {"B2": {"label": "vehicle", "notes": "0.1 % DMSO"}}

@@ -139,6 +139,8 @@ def test_body_schemas_are_generated_from_their_dataclasses(name):
             continue
         if f.default not in (dataclasses.MISSING, None):
             assert prop["default"] == (list(f.default) if isinstance(f.default, tuple) else f.default)
+        elif f.default_factory is not dataclasses.MISSING:  # list options: a fresh empty list each time
+            assert prop["default"] == f.default_factory()
         else:
             assert "default" not in prop
         leaf = prop.get("items", prop)

@@ -157,7 +157,7 @@ def fit_growth(
     n = int(t_s.size)
     t_ref = float(t_s[0]) if n else 0.0
     if n < MIN_POINTS:
-        return GrowthFit("none", None, None, None, False, f"only {n} usable time points; a fit needs {MIN_POINTS}", n, t_ref_s=t_ref)
+        return GrowthFit("none", None, None, None, False, f"only {n} usable time point{'' if n == 1 else 's'}; a fit needs {MIN_POINTS}", n, t_ref_s=t_ref)
     t_h = (t_s - t_ref) / S_PER_H
     if t_h[-1] - t_h[0] <= 0:
         return GrowthFit("none", None, None, None, False, "all time points at the same time", n, t_ref_s=t_ref)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import json
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -15,12 +16,13 @@ from daemon.states import FrameState
 from daemon.storage.index import DATA_FILE_MODE, DATA_FOLDER_MODE, Index
 from daemon.storage.ome import FrameMeta, iso_utc, stack_metadata
 from daemon.storage.verify import current_statuses
+from daemon.timelapse.plan import Plan
 from drivers import atomic
 
 FRAME_COLUMNS = (
     "timelapse_id", "time_point", "planned_s", "t_s", "time_utc", "elapsed_h", "late_s", "position",
     "well", "site", "z_index", "kind", "x_um", "y_um", "z_um", "exposure_ms", "gain_db",
-    "focus_score", "focus_found", "confluence", "status", "path",
+    "focus_score", "focus_found", "confluence", "status", "path", "condition", "condition_notes",
 )
 TIME_POINT_COLUMNS = (
     "timelapse_id", "time_point", "status", "planned_s", "started_s", "finished_s", "late_s",
@@ -43,6 +45,7 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     atomic.make_dirs(out_dir, mode=DATA_FOLDER_MODE)
     t0 = tl["t0_s"]
     points = {tp["tp"]: tp for tp in index.time_points(tl_id)}
+    plan = plan_of(tl)
     frame_rows = []
     rows = index.frames(tl_id)
     # A damaged or missing file is marked in the export's status column, never listed as ok.
@@ -57,7 +60,7 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
             "" if f["focus_score"] is None else f"{f['focus_score']:.6g}",
             "" if found is None else ("yes" if found else "no"),
             "" if f["confluence"] is None else f"{f['confluence']:.4f}",
-            status, f["path"],
+            status, f["path"], *_condition_cells(plan, f["well"]),
         ])
     tp_rows = []
     for tp in points.values():
@@ -76,9 +79,24 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
     from daemon.culture.readings import WELL_COLUMNS, growth_fits, timelapse_readings, well_rows
 
     readings = timelapse_readings(index, tl_id)
-    _atomic_csv(out_dir / "wells.csv", WELL_COLUMNS, well_rows(readings))
-    _atomic_csv(out_dir / "growth.csv", GROWTH_COLUMNS, growth_rows(growth_fits(readings)))
+    wells = [[*row, *_condition_cells(plan, row[2])] for row in well_rows(readings)]
+    _atomic_csv(out_dir / "wells.csv", (*WELL_COLUMNS, *CONDITION_COLUMNS), wells)
+    growth = [[*row, *_condition_cells(plan, row[0])] for row in growth_rows(growth_fits(readings))]
+    _atomic_csv(out_dir / "growth.csv", (*GROWTH_COLUMNS, *CONDITION_COLUMNS), growth)
     return frames_csv, points_csv
+
+
+CONDITION_COLUMNS = ("condition", "condition_notes")
+
+
+def plan_of(tl: dict[str, Any]) -> Plan:
+    """The plan a time-lapse was started with, as its index row keeps it."""
+    return Plan.from_dict(json.loads(tl["plan_json"])["plan"], file=f"time-lapse {tl['id']}")
+
+
+def _condition_cells(plan: Plan, well: str) -> list[str]:
+    c = plan.condition_of(well)
+    return [c.label, c.notes]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -90,13 +108,14 @@ class StackExport:
     skipped_time_points: int
 
 
-def _meta_of(row: dict[str, Any], tl: dict[str, Any]) -> FrameMeta:
+def _meta_of(row: dict[str, Any], tl: dict[str, Any], plan: Plan) -> FrameMeta:
     return FrameMeta(
         timelapse_id=row["timelapse_id"], timelapse_name=tl["name"], tp=row["tp"], key=row["key"],
         well=row["well"], site=row["site"], z_index=row["z_index"], kind=row["kind"], t_s=row["t_s"],
         delta_t_s=row["delta_t_s"], x_um=row["x_um"], y_um=row["y_um"], z_um=row["z_um"],
         exposure_ms=row["exposure_ms"], gain_db=row["gain_db"], bit_depth=row["bit_depth"],
-        pixel_size_um=row["pixel_size_um"],
+        pixel_size_um=row["pixel_size_um"], condition=plan.condition_of(row["well"]).label,
+        condition_notes=plan.condition_of(row["well"]).notes,
     )
 
 
@@ -110,6 +129,7 @@ def export_stacks(
     counted; the planes' DeltaT keeps the true acquisition times.
     """
     tl = index.require_timelapse(tl_id)
+    plan = plan_of(tl)
     rows = index.frames(tl_id)
     frames = [f for f, s in zip(rows, current_statuses(index, data_dir, rows, "an export")) if s == FrameState.OK]
     if kind is None:
@@ -132,7 +152,7 @@ def export_stacks(
         if n_z > 1:
             shape = (len(complete), n_z, first["height_px"], first["width_px"])
             axes = "TZYX"
-        metadata = stack_metadata([_meta_of(r, tl) for r in rows], axes, f"{tl['name']} {key} {kind}")
+        metadata = stack_metadata([_meta_of(r, tl, plan) for r in rows], axes, f"{tl['name']} {key} {kind}")
 
         def pages(rows: list[dict[str, Any]] = rows) -> Iterator[np.ndarray]:
             for r in rows:

@@ -49,6 +49,8 @@ class FrameMeta:
     confluence: float | None = None
     focus_found: bool | None = None
     objective: str = ""
+    condition: str = ""
+    condition_notes: str = ""
 
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
@@ -89,6 +91,8 @@ def frame_metadata(meta: FrameMeta) -> dict[str, Any]:
         "focus_score": _opt(meta.focus_score),
         "confluence": _opt(meta.confluence),
         "focus_found": _opt(meta.focus_found),
+        "condition": meta.condition,
+        "condition_notes": meta.condition_notes,
     }
     return {
         "axes": "YX",
@@ -150,7 +154,8 @@ def stack_metadata(metas: list[FrameMeta], axes: str, name: str) -> dict[str, An
         "axes": axes,
         "Name": name,
         "AcquisitionDate": iso_utc(first.t_s),
-        "Description": f"well {first.well} site {first.site}, {len(metas)} planes",
+        "Description": f"well {first.well} site {first.site}, {len(metas)} planes"
+                       + (f", condition {first.condition}" if first.condition else ""),
         "PhysicalSizeX": first.pixel_size_um,
         "PhysicalSizeXUnit": "µm",
         "PhysicalSizeY": first.pixel_size_um,
@@ -214,6 +219,8 @@ def parse_frame_xml(xml: str) -> FrameMeta:
             confluence=_opt_float(values.get("confluence")),
             focus_found=None if not found else found == "true",
             objective=description.rpartition("objective ")[2] if "objective " in description else "",
+            condition=values.get("condition", ""),
+            condition_notes=values.get("condition_notes", ""),
         )
     except (KeyError, ValueError) as exc:
         raise NotOurFrame(f"frame annotation incomplete: {exc}") from None

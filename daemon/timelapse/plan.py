@@ -17,6 +17,15 @@ A plan is a TOML or JSON file::
     count = 5
     step_um = 2.0
 
+    [[conditions]]            # optional: what was done to which wells
+    wells = "B2:B6"
+    label = "vehicle"
+    notes = "0.1 % DMSO, added 09:30"
+
+    [[conditions]]
+    wells = ["C2:C6"]
+    label = "compound R-17 5 uM"
+
 Loading is strict in the style of :mod:`drivers.options`: every error names the key and
 says what is allowed.
 """
@@ -78,6 +87,19 @@ class ZStack:
         return (self.count - 1) * self.step_um
 
 
+# Labels go into OME metadata, CSV columns and plot legends: one short line.
+MAX_CONDITION_LABEL = 80
+MAX_CONDITION_NOTES = 2000
+
+
+@dataclasses.dataclass(frozen=True)
+class WellCondition:
+    """The condition or treatment of one well, and free notes about it."""
+
+    label: str
+    notes: str = ""
+
+
 @dataclasses.dataclass(frozen=True)
 class Plan:
     name: str
@@ -97,6 +119,20 @@ class Plan:
     site_spacing_um: float | None = None
     source: str = ""
     focus_metric: str = DEFAULT_METRIC
+    conditions: dict[str, WellCondition] = dataclasses.field(default_factory=dict)
+
+    def condition_of(self, well: str) -> WellCondition:
+        """The well's condition; an empty label where the plan gives none."""
+        return self.conditions.get(well, WellCondition(""))
+
+    def condition_groups(self) -> list[dict[str, Any]]:
+        """The conditions as the plan file writes them: one table per label and notes, wells in plate order."""
+        groups: dict[tuple[str, str], list[str]] = {}
+        for well in self.wells:
+            c = self.conditions.get(well)
+            if c is not None:
+                groups.setdefault((c.label, c.notes), []).append(well)
+        return [{"wells": wells, "label": label, "notes": notes} for (label, notes), wells in groups.items()]
 
     @property
     def duration_s(self) -> float:
@@ -135,6 +171,8 @@ class Plan:
                 d[key] = getattr(self, key)
         if self.vessel_file:
             d["vessel_file"] = self.vessel_file
+        if self.conditions:
+            d["conditions"] = self.condition_groups()
         return d
 
     @classmethod
@@ -149,6 +187,21 @@ class Plan:
 class ZStackOptions:
     count: int = option(1, doc="planes per position (1 = no z-stack)", min=1, max=201)
     step_um: float = option(2.0, doc="focus step between planes", min=0.05, max=500.0, unit="um")
+
+
+@dataclasses.dataclass(frozen=True, kw_only=True)
+class ConditionOptions:
+    wells: str | list[str] = option(doc="wells of this condition: 'B2:B4', ['C3', 'D3'] (all must be in the plan)")
+    label: str = option(doc="condition or treatment, e.g. 'vehicle' or 'compound R-17 5 uM'")
+    notes: str = option("", doc="free notes about these wells")
+
+    def __post_init__(self) -> None:
+        if not self.label.strip():
+            raise ValueError("label: must not be empty; leave the wells out of conditions instead")
+        if len(self.label) > MAX_CONDITION_LABEL or "\n" in self.label:
+            raise ValueError(f"label: one line of at most {MAX_CONDITION_LABEL} characters")
+        if len(self.notes) > MAX_CONDITION_NOTES:
+            raise ValueError(f"notes: at most {MAX_CONDITION_NOTES} characters")
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -170,6 +223,7 @@ class PlanOptions:
     correction: bool = option(True, doc="apply dark and flat-field correction")
     save: str = option("corrected", doc="which frames to store", choices=SAVE_CHOICES)
     notes: str = option("", doc="free text stored with the data")
+    conditions: list[Any] = option([], doc="condition label and notes per well or group of wells: tables of wells, label, notes")
 
     def __post_init__(self) -> None:
         if self.count is None and self.duration_s is None:
@@ -180,6 +234,11 @@ class PlanOptions:
             raise ValueError(f"save: '{self.save}' needs correction = true; with correction off use save = 'raw'")
         if not self.name.strip():
             raise ValueError("name: must not be empty")
+
+
+def counted(n: int, noun: str) -> str:
+    """'1 well', '3 wells': messages a person reads count in words that agree."""
+    return f"{n} {noun}" if n == 1 else f"{n} {noun}s"
 
 
 def count_from_duration(duration_s: float, interval_s: float) -> int:
@@ -210,6 +269,7 @@ def plan_from_options(opts: PlanOptions, *, file: str | Path = "plan", base_dir:
     except VesselError as exc:
         raise ConfigError(file, "", "wells", exc.problem.removeprefix("wells: ")) from None
     count = opts.count if opts.count is not None else count_from_duration(opts.duration_s or 0.0, opts.interval_s)
+    conditions = _conditions(opts.conditions, vessel, wells, file)
     zs = opts.z_stack
     return Plan(
         name=opts.name.strip(), vessel=vessel.name, wells=wells, sites_per_well=opts.sites_per_well,
@@ -217,8 +277,30 @@ def plan_from_options(opts: PlanOptions, *, file: str | Path = "plan", base_dir:
         z_stack=ZStack(zs.count, zs.step_um) if zs.count > 1 else None,
         exposure_ms=opts.exposure_ms, gain_db=opts.gain_db, correction=opts.correction,
         save=opts.save, notes=opts.notes, vessel_file=vessel_file,
-        site_spacing_um=opts.site_spacing_um, source=str(file),
+        site_spacing_um=opts.site_spacing_um, source=str(file), conditions=conditions,
     )
+
+
+def _conditions(tables: list[Any], vessel: Vessel, wells: list[str], file: str | Path) -> dict[str, WellCondition]:
+    """Each well's condition from the plan's condition tables: wells must be in the plan, and once only."""
+    out: dict[str, WellCondition] = {}
+    in_plan = set(wells)
+    for i, raw in enumerate(tables):
+        where = f"conditions[{i}]"
+        c = load_section(ConditionOptions, raw, file=file, section=where)
+        try:
+            named = parse_wells(c.wells, vessel)
+        except VesselError as exc:
+            raise ConfigError(file, where, "wells", exc.problem.removeprefix("wells: ")) from None
+        outside = [w for w in named if w not in in_plan]
+        if outside:
+            raise ConfigError(file, where, "wells", f"{', '.join(outside[:6])} not in the plan's wells; add them to wells first")
+        twice = [w for w in named if w in out]
+        if twice:
+            raise ConfigError(file, where, "wells", f"{', '.join(twice[:6])} already has condition {out[twice[0]].label!r}; one condition per well")
+        for w in named:
+            out[w] = WellCondition(c.label.strip(), c.notes.strip())
+    return out
 
 
 def load_plan(path: Path) -> Plan:
@@ -399,7 +481,7 @@ class PlanEstimate:
 
     def summary(self) -> str:
         return (
-            f"{self.positions} positions, about {self.per_position_s:.2f} s each plus {self.travel_s:.1f} s travel: "
+            f"{counted(self.positions, 'position')}, about {self.per_position_s:.2f} s each plus {self.travel_s:.1f} s travel: "
             f"{self.time_point_s:.1f} s per time point (first: {self.first_time_point_s:.1f} s)"
         )
 
@@ -506,7 +588,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         more = f" and {len(outside) - 4} more" if len(outside) > 4 else ""
         raise ConfigError(
             where, "", "wells",
-            f"{len(outside)} positions lie outside the stage limits x {s.x_min_um:g}..{s.x_max_um:g}, "
+            f"{counted(len(outside), 'position')} {'lies' if len(outside) == 1 else 'lie'} outside the stage limits x {s.x_min_um:g}..{s.x_max_um:g}, "
             f"y {s.y_min_um:g}..{s.y_max_um:g} um: {names}{more}; check the wells and the stage map (phasewatch vessel teach)",
         )
     est = estimate_plan(profile, plan, positions)
@@ -515,7 +597,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         need = math.ceil(est.time_point_s / INTERVAL_HEADROOM)
         raise ConfigError(
             where, "", "interval_s",
-            f"a time point needs about {est.time_point_s:.0f} s ({est.positions} positions x "
+            f"a time point needs about {est.time_point_s:.0f} s ({counted(est.positions, 'position')} x "
             f"{est.per_position_s:.2f} s + {est.travel_s:.1f} s travel), more than interval_s = {plan.interval_s:g}; "
             f"raise interval_s to at least {need} or image fewer positions",
         )
@@ -535,7 +617,7 @@ def check_fits(profile: Profile, plan: Plan, positions: list[PlannedPosition]) -
         tight = [n for n in plan.wells if not _fits([(0.0, 0.0)], vessel.well(n), fw, fh, max(fw, fh))]
         if tight:
             warnings.append(
-                f"the {fw:.0f} x {fh:.0f} um field comes within one field of the wall in {len(tight)} wells "
+                f"the {fw:.0f} x {fh:.0f} um field comes within one field of the wall in {counted(len(tight), 'well')} "
                 f"(e.g. {tight[0]}); expect meniscus shading at the frame edges"
             )
     if profile.sim is not None:

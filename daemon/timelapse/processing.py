@@ -12,12 +12,14 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from collections.abc import Mapping
 from typing import TYPE_CHECKING
 
 import numpy as np
 
 from daemon.storage.frames import FrameStore
 from daemon.storage.ome import FrameMeta
+from daemon.timelapse.plan import WellCondition
 from drivers.base import Frame, Position
 
 if TYPE_CHECKING:
@@ -59,6 +61,7 @@ class FrameProcessor:
         kinds: tuple[str, ...],
         corrector: Corrector | None,
         analysis_plane: int,
+        conditions: Mapping[str, WellCondition] | None = None,
     ) -> None:
         if not kinds or any(k not in ("raw", "corrected") for k in kinds):
             raise ValueError(f"kinds must be some of 'raw', 'corrected', got {kinds!r}")
@@ -73,6 +76,7 @@ class FrameProcessor:
         self.kinds = kinds
         self.corrector = corrector
         self.analysis_plane = analysis_plane
+        self.conditions = dict(conditions or {})
 
     def save_position(self, data: PositionFrames) -> SavedPosition:
         from daemon.focus.metrics import variance_of_laplacian
@@ -81,6 +85,7 @@ class FrameProcessor:
         saved: list[tuple[FrameMeta, str, int]] = []
         analysis: np.ndarray | None = None
         analysis_ids: list[int] = []
+        cond = self.conditions.get(data.position.well, WellCondition(""))
         for zi, frame, here in data.frames:
             raw = frame.pixels
             images = {"raw": raw}
@@ -97,7 +102,7 @@ class FrameProcessor:
                     z_um=here.z_um, exposure_ms=frame.exposure_ms, gain_db=frame.gain_db,
                     bit_depth=frame.bit_depth, pixel_size_um=self.pixel_size_um,
                     focus_score=float(variance_of_laplacian(pixels)), focus_found=data.focus_found,
-                    objective=self.objective,
+                    objective=self.objective, condition=cond.label, condition_notes=cond.notes,
                 )
                 rec = self.store.save(pixels, meta)
                 saved.append((meta, rec.path, rec.frame_id))

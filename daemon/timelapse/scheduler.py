@@ -352,6 +352,7 @@ class Scheduler:
             self.store, timelapse_id=self.id, timelapse_name=self.plan.name, t0_s=self.t0_s,
             pixel_size_um=self.profile.optics.pixel_size_um, objective=self.profile.optics.objective,
             kinds=kinds, corrector=corrector, analysis_plane=self.plan.analysis_plane,
+            conditions=self.plan.conditions,
         )
         resumed = bool(await asyncio.to_thread(self.index.time_points, self.id))
         if resumed and self.state == TimelapseState.RUNNING:

@@ -322,7 +322,8 @@ def load_stage_map(data_dir: Path, profile: Profile) -> StageMap:
     )
 
 
-def _mapped_vessel(data_dir: Path, profile: Profile, vessel: str | None) -> tuple[StageMap, Vessel]:
+def mapped_vessel(data_dir: Path, profile: Profile, vessel: str | None = None) -> tuple[StageMap, Vessel]:
+    """The profile's stage map and the vessel it maps (``vessel``, else the one it was taught on)."""
     smap = load_stage_map(data_dir, profile)
     name = vessel or smap.vessel or sim_vessel_name(profile)
     if not name:
@@ -339,7 +340,7 @@ def well_position_um(
 
     ``vessel`` defaults to the one the map was taught on (or the simulated plate's).
     """
-    smap, v = _mapped_vessel(data_dir, profile, vessel)
+    smap, v = mapped_vessel(data_dir, profile, vessel)
     return smap.well_stage_um(v, well)
 
 
@@ -349,5 +350,5 @@ def well_at_stage(
     """The well over stage point (x, y) by the profile's stored (or simulated) map and the
     vessel's geometry; None between wells or off the vessel. The inverse of
     :func:`well_position_um`; raises ConfigError when there is no map to go by."""
-    smap, v = _mapped_vessel(data_dir, profile, vessel)
+    smap, v = mapped_vessel(data_dir, profile, vessel)
     return smap.well_at(v, x_um, y_um)

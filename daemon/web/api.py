@@ -29,7 +29,7 @@ from typing import Any
 
 from aiohttp import web
 
-from daemon.archive import MAX_ID, AlertsQuery, ExportFile, ExportRequest, FramesQuery, PreviewQuery
+from daemon.archive import MAX_ID, AlertsQuery, ExportFile, ExportRequest, FramesQuery, MovieQuery, PreviewQuery
 from daemon.errors import BadRequest, Busy, Damaged, NoSpace, NotFound
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination import CalibrationError
@@ -515,6 +515,31 @@ async def get_well_readings(request: web.Request) -> web.Response:
     readings = await request.app[STATION].well_readings(tl_id, request.match_info["well"])
     return json_response({"id": tl_id, "well": readings[0].well if readings else request.match_info["well"].upper(),
                           "readings": [r.to_dict() for r in readings]})
+
+
+@routes.get(r"/api/v1/timelapses/{id:\d+}/positions/{position}/movie.mp4")
+@takes(query=MovieQuery)
+async def get_position_movie(request: web.Request, query: MovieQuery) -> web.StreamResponse:
+    """One position's time points as an H.264 MP4, made from the frames stored so far."""
+    position = request.match_info["position"]
+    path = await request.app[STATION].movie(tl_id_of(request), position, query)
+    return web.FileResponse(path, headers={
+        "Content-Type": "video/mp4", "Content-Disposition": f'attachment; filename="{path.name}"',
+        "Cache-Control": "no-store",
+    })
+
+
+# -- vessels ---------------------------------------------------------------------------
+
+
+@routes.get(f"{API_PREFIX}/vessel")
+async def get_mapped_vessel(request: web.Request) -> web.Response:
+    return json_response(await request.app[STATION].vessel(None))
+
+
+@routes.get(f"{API_PREFIX}/vessels/{{name}}")
+async def get_vessel(request: web.Request) -> web.Response:
+    return json_response(await request.app[STATION].vessel(request.match_info["name"]))
 
 
 # -- exports ---------------------------------------------------------------------------

@@ -17,7 +17,7 @@ import typing
 from typing import Any
 
 from daemon import __version__
-from daemon.archive import AlertsQuery, ExportRequest, FramesQuery, PreviewQuery
+from daemon.archive import AlertsQuery, ExportRequest, FramesQuery, MovieQuery, PreviewQuery
 from daemon.focus.autofocus import AutofocusRequest
 from daemon.illumination.acquire import DarkRequest, FlatRequest
 from daemon.live import ImageQuery, StreamQuery
@@ -75,6 +75,10 @@ def _value_schema(tp: Any, meta: typing.Mapping[str, Any]) -> dict[str, Any]:
         return {"type": "array", "items": _value_schema(typing.get_args(tp)[0], meta)}
     if dataclasses.is_dataclass(tp):
         return request_schema(tp)  # type: ignore[arg-type]
+    if tp is typing.Any:
+        # Items the field's own loader checks one by one (a plan's conditions: tables of
+        # ConditionOptions), so any JSON value passes here as it passes the option loader.
+        return {}
     schema: dict[str, Any] = {"type": _SCALARS[tp]}
     if meta.get("choices"):
         schema["enum"] = [_json_value(c) for c in meta["choices"]]
@@ -228,8 +232,16 @@ def _schemas() -> dict[str, Any]:
                     "allowed": {"type": "boolean"}, "reason": {"type": ["string", "null"]}}},
                 "live": {"type": "object"},
                 "simulator": {"type": ["object", "null"]},
+                "vessel_position": {"type": ["object", "null"], "description":
+                                    "where the objective is over the mapped vessel: vessel, x_mm, y_mm "
+                                    "(from its top-left outer corner), on_vessel, well (null between wells)"},
             },
         },
+        "Vessel": {"type": "object", "required": ["name", "kind", "length_mm", "width_mm", "wells", "mapped"],
+                   "properties": {
+                       "name": {"type": "string"}, "kind": {"type": "string"}, "length_mm": num, "width_mm": num,
+                       "rows": {"type": "integer"}, "columns": {"type": "integer"}, "mapped": {"type": "boolean"},
+                       "wells": {"type": "array", "items": {"type": "object", "required": ["name", "x_mm", "y_mm", "shape"]}}}},
         "MoveResult": {"type": "object", "required": ["position_um"], "properties": {
             "position_um": position, "well": {"type": ["string", "null"]}}},
         "FocusResult": {
@@ -344,6 +356,16 @@ def document() -> dict[str, Any]:
         f"{tl}/wells/{{well}}/readings": {"get": _get(
             "One well over time: confluence (mean of the sites used), sites used, focus state per time point",
             _json(_ref("WellReadings"), "readings"), params=[_ID, _WELL], errors=("400", "404"))},
+        f"{tl}/positions/{{position}}/movie.mp4": {"get": _get(
+            "One position's time points as a movie (MP4, H.264), time and scale bar burnt in",
+            _binary("video/mp4", "the movie"),
+            params=[_ID, _path("position", {"type": "string"}, "position key, e.g. B3-1")], query=MovieQuery,
+            errors=("404",))},
+        f"{P}/vessel": {"get": _get("The vessel the stage map was taught on, for drawing to scale (mm)",
+                                    _json(_ref("Vessel"), "the vessel"), errors=("404",))},
+        f"{P}/vessels/{{name}}": {"get": _get(
+            "A vessel's geometry for drawing to scale (mm from its top-left outer corner)", _json(_ref("Vessel"), "the vessel"),
+            params=[_path("name", {"type": "string"}, "vessel name or alias, e.g. 96-well")], errors=("404",))},
         f"{tl}/exports": {
             "get": _get("Export files made so far", _json(_ref("ExportList"), "files"), params=[_ID], errors=("404",)),
             "post": _post("Make the exports: CSV of per-frame metrics and one OME-TIFF stack per position",

@@ -19,6 +19,12 @@ const ui = {
   liveOn: true,
   ws: null,
   refreshTimer: null,
+  vessel: null,       // the drawn vessel's geometry (mm)
+  selected: new Set(),
+  lastClicked: null,
+  mapMode: "go",      // what a plain click on a well does: "go" there, or "select" it
+  conditions: {},     // well -> {label, notes}, for the plan being built
+  viewer: null,       // {key, frames, index, timer}
 };
 
 // -- talking to the daemon ------------------------------------------------------------
@@ -126,6 +132,30 @@ function clock(t_s) {
   return new Date(t_s * 1000).toLocaleString([], { hour: "2-digit", minute: "2-digit", second: "2-digit", day: "numeric", month: "short" });
 }
 
+// Durations as a biologist types them: "15 min", "2 h", "3 d" (also "90 s", "1.5 h").
+const UNIT_S = { s: 1, sec: 1, second: 1, seconds: 1, min: 60, mins: 60, minute: 60, minutes: 60,
+  h: 3600, hr: 3600, hrs: 3600, hour: 3600, hours: 3600, d: 86400, day: 86400, days: 86400 };
+
+function parseDuration(text) {
+  const m = /^\s*(\d+(?:[.,]\d+)?)\s*([a-zA-Z]+)\s*$/.exec(text || "");
+  if (!m) return null;
+  const f = UNIT_S[m[2].toLowerCase()];
+  return f ? Number(m[1].replace(",", ".")) * f : null;
+}
+
+function formatDuration(s) {
+  const round = (v) => String(+v.toFixed(2));
+  if (s >= 86400 && Math.abs(s / 86400 - Math.round(s / 86400)) < 1e-9) return `${round(s / 86400)} d`;
+  if (s >= 3600 && Math.abs(s / 3600 - Math.round(s / 3600 * 4) / 4) < 1e-9) return `${round(s / 3600)} h`;
+  if (s >= 60 && Math.abs(s / 60 - Math.round(s / 60)) < 1e-9) return `${round(s / 60)} min`;
+  return `${round(s)} s`;
+}
+
+// Time points at 0, interval, 2 x interval ... up to and including the duration (as the daemon counts).
+const timePointsOf = (interval_s, duration_s) => Math.floor(duration_s / interval_s + 1e-9) + 1;
+
+const plural = (n, word, many) => `${n} ${n === 1 ? word : (many || `${word}s`)}`;
+
 function ago(seconds) {
   if (seconds < 0) seconds = 0;
   if (seconds < 90) return `${Math.round(seconds)} s`;
@@ -161,7 +191,8 @@ async function refreshStatus() {
   $("pos-z").textContent = p ? um(p.z_um, 1) : "—";
   $("objective").textContent = `${s.profile.objective} · ${s.profile.pixel_size_um} µm/px`;
   // The well comes from the vessel-to-stage map; the simulator's truth is shown beside it when they differ.
-  let well = p ? s.well || "between wells" : "—";
+  const here = s.vessel_position;
+  let well = !p ? "—" : !here ? "no vessel map" : !here.on_vessel ? "off the vessel" : (here.well || "between wells");
   if (s.simulator) {
     $("truth-row").hidden = false;
     $("truth-z").textContent = um(s.simulator.focus_z_um, 1);
@@ -190,6 +221,7 @@ async function refreshStatus() {
   badge.dataset.state = s.state;
   renderTimelapseBadge(s.active_timelapse);
   renderVerdict();
+  drawStageMarker();
 }
 
 // -- live view ------------------------------------------------------------------------
@@ -327,7 +359,9 @@ function renderTimelapse() {
   const d = ui.detail;
   const running = d && (d.state === "running" || d.state === "paused") && d.running_here;
   $("tl-active").hidden = !d;
-  $("tl-form").hidden = !!running;
+  $("tl-none").hidden = !!d;
+  $("plan-card").hidden = !!running;
+  drawMap();
   if (!d) return;
   $("tl-name").textContent = `#${d.id} ${d.name}`;
   const tp = d.time_points;
@@ -351,20 +385,52 @@ function renderTimelapse() {
   $("tl-export").disabled = !(signed && d.frames > 0);
 }
 
+function wellsOfField() {
+  return $("tl-form").wells.value.split(/[\s,;]+/).filter(Boolean);
+}
+
+function planTiming() {
+  const f = $("tl-form");
+  const interval_s = parseDuration(f.interval.value);
+  const duration_s = parseDuration(f.duration.value);
+  if (interval_s === null) return { error: `"Every": write a number and a unit, e.g. 15 min, 2 h or 1 d` };
+  if (duration_s === null) return { error: `"For": write a number and a unit, e.g. 12 h or 3 d` };
+  if (interval_s < 1) return { error: `"Every": at least 1 s` };
+  return { interval_s, duration_s, count: timePointsOf(interval_s, duration_s) };
+}
+
+function conditionGroups(wells) {
+  const groups = new Map();
+  for (const w of wells) {
+    const c = ui.conditions[w];
+    if (!c || !c.label) continue;
+    const k = JSON.stringify([c.label, c.notes || ""]);
+    if (!groups.has(k)) groups.set(k, { wells: [], label: c.label, notes: c.notes || "" });
+    groups.get(k).wells.push(w);
+  }
+  return [...groups.values()];
+}
+
 function planFromForm() {
   const f = $("tl-form");
-  const wells = f.wells.value.split(/[\s,;]+/).filter(Boolean);
-  return {
+  const wells = wellsOfField();
+  const t = planTiming();
+  if (t.error) throw new ApiError(422, t.error);
+  const plan = {
     name: f.name.value.trim(),
     vessel: f.vessel.value.trim(),
     wells: wells.length === 1 ? wells[0] : wells,
     sites_per_well: Number(f.sites_per_well.value || 1),
-    interval_s: Number(f.interval_s.value),
-    count: Number(f.count.value),
+    interval_s: t.interval_s,
+    duration_s: t.duration_s,
     autofocus: f.autofocus.value,
     correction: f.correction.checked,
     save: f.correction.checked ? "corrected" : "raw",
   };
+  const named = expandWells(wells);
+  const groups = conditionGroups(named);
+  if (groups.length) plan.conditions = groups;
+  return plan;
 }
 
 function fillForm(plan) {
@@ -373,27 +439,106 @@ function fillForm(plan) {
   f.vessel.value = plan.vessel;
   f.wells.value = Array.isArray(plan.wells) ? plan.wells.join(", ") : plan.wells;
   f.sites_per_well.value = plan.sites_per_well || 1;
-  f.interval_s.value = plan.interval_s;
-  f.count.value = plan.count;
+  f.interval.value = formatDuration(plan.interval_s);
+  const duration = plan.duration_s !== undefined ? plan.duration_s : (plan.count - 1) * plan.interval_s;
+  f.duration.value = formatDuration(duration);
   f.autofocus.value = plan.autofocus || "track";
   f.correction.checked = !!plan.correction;
+  ui.conditions = {};
+  for (const g of plan.conditions || []) for (const w of g.wells) ui.conditions[w] = { label: g.label, notes: g.notes || "" };
+  selectionFromField();
+  renderTiming();
+  renderConditions();
+}
+
+function renderTiming() {
+  const t = planTiming();
+  const out = $("tl-f-points");
+  if (t.error) { out.textContent = t.error; out.dataset.count = ""; return; }
+  out.dataset.count = String(t.count);
+  const est = ui.lastEstimate;
+  let text = `${plural(t.count, "time point")}, one every ${formatDuration(t.interval_s)} for ${formatDuration(t.duration_s)}`;
+  if (est) {
+    text += `; about ${ago(est.time_point_s)} per time point, ` +
+      `${ago(est.time_point_s * t.count)} of imaging in all`;
+  }
+  out.textContent = text;
 }
 
 function describeEstimate(check) {
   const e = check.estimate;
-  const lines = [`${check.positions.length} positions; about ${e.time_point_s.toFixed(0)} s per time point (the first, with a cold focus search: ${e.first_time_point_s.toFixed(0)} s); ${(e.bytes_per_time_point / 1e6).toFixed(1)} MB per time point; runs ${ago(e.duration_s)}.`];
+  ui.lastEstimate = e;
+  renderTiming();
+  const n = check.positions.length;
+  const lines = [`${plural(n, "position")}; about ${e.time_point_s.toFixed(0)} s per time point (the first, with a cold focus search: ${e.first_time_point_s.toFixed(0)} s); ${(e.bytes_per_time_point / 1e6).toFixed(1)} MB per time point; runs ${ago(e.duration_s)}.`];
   for (const w of check.warnings) lines.push(`Note: ${w}`);
   return lines.join(" ");
 }
 
+let checkTimer = null;
+function scheduleCheck() {
+  clearTimeout(checkTimer);
+  checkTimer = setTimeout(async () => {
+    let body;
+    try { body = planFromForm(); } catch (e) { return; }
+    if (!body.name || !body.vessel || !wellsOfField().length) return;
+    const out = await api("/plans/check", { method: "POST", body }).catch((e) => { $("tl-estimate").textContent = e.message; return null; });
+    if (out) $("tl-estimate").textContent = describeEstimate(out);
+  }, 500);
+}
+
+// -- conditions -----------------------------------------------------------------------
+
+function renderConditions() {
+  const ul = $("cond-list");
+  ul.replaceChildren();
+  const groups = conditionGroups(Object.keys(ui.conditions).sort(wellOrder));
+  if (!groups.length) { ul.append(el("li", { class: "empty" }, "no conditions yet")); }
+  groups.forEach((g) => {
+    const li = el("li", { "data-condition": g.label });
+    const sw = el("span", { class: `cond-swatch cond-${conditionIndex(g.label) % 6}` });
+    li.append(sw, el("strong", {}, g.label), el("span", {}, ` — ${g.wells.join(", ")}`));
+    if (g.notes) li.append(el("span", { class: "hint" }, ` (${g.notes})`));
+    ul.append(li);
+  });
+  drawMap();
+}
+
+function conditionLabels() {
+  const labels = [];
+  for (const w of Object.keys(ui.conditions).sort(wellOrder)) {
+    const l = ui.conditions[w].label;
+    if (l && !labels.includes(l)) labels.push(l);
+  }
+  return labels;
+}
+
+function conditionIndex(label) {
+  const i = conditionLabels().indexOf(label);
+  return i < 0 ? 0 : i;
+}
+
+function applyCondition(clear) {
+  const wells = expandWells($("cond-wells").value.split(/[\s,;]+/).filter(Boolean));
+  if (!wells.length) { toast("select wells on the map first (shift-click or drag), or type them", "warn"); return; }
+  const label = $("cond-label").value.trim();
+  if (!clear && !label) { toast("name the condition first", "warn"); return; }
+  for (const w of wells) {
+    if (clear) delete ui.conditions[w];
+    else ui.conditions[w] = { label, notes: $("cond-notes").value.trim() };
+  }
+  renderConditions();
+  scheduleCheck();
+}
+
 async function checkPlan() {
-  const out = await act("Plan", () => api("/plans/check", { method: "POST", body: planFromForm() }));
+  const out = await act("Plan", async () => api("/plans/check", { method: "POST", body: planFromForm() }));
   if (out) $("tl-estimate").textContent = describeEstimate(out);
 }
 
 async function startTimelapse(ev) {
   ev.preventDefault();
-  const out = await act("Start", () => api("/timelapses", { method: "POST", body: planFromForm() }));
+  const out = await act("Start", async () => api("/timelapses", { method: "POST", body: planFromForm() }));
   if (out) {
     toast(`time-lapse #${out.id} started`);
     $("tl-estimate").textContent = "";
@@ -429,6 +574,361 @@ async function exportTimelapse() {
   }
 }
 
+
+// -- the vessel map -------------------------------------------------------------------
+
+const SVG = "http://www.w3.org/2000/svg";
+function sv(name, attrs, parent) {
+  const e = document.createElementNS(SVG, name);
+  for (const [k, v] of Object.entries(attrs || {})) e.setAttribute(k, String(v));
+  if (parent) parent.appendChild(e);
+  return e;
+}
+
+function wellOrder(a, b) {
+  const w = ui.vessel ? ui.vessel.wellsByName : null;
+  if (w && w[a] && w[b]) return w[a].row - w[b].row || w[a].column - w[b].column;
+  return a.localeCompare(b, undefined, { numeric: true });
+}
+
+// Wells named in the field: names and rectangular ranges ("B2:C4"), as the daemon reads them.
+function expandWells(items) {
+  const v = ui.vessel;
+  const out = new Set();
+  for (const raw of items) {
+    const t = raw.trim().toUpperCase();
+    if (!t) continue;
+    if (!v) { out.add(t); continue; }
+    if (t === "ALL") { for (const w of v.wells) out.add(w.name); continue; }
+    const [a, b] = t.split(":");
+    const wa = v.wellsByName[normWell(a)], wb = b ? v.wellsByName[normWell(b)] : wa;
+    if (!wa || !wb) continue;
+    const [r0, r1] = [Math.min(wa.row, wb.row), Math.max(wa.row, wb.row)];
+    const [c0, c1] = [Math.min(wa.column, wb.column), Math.max(wa.column, wb.column)];
+    for (const w of v.wells) if (w.row >= r0 && w.row <= r1 && w.column >= c0 && w.column <= c1) out.add(w.name);
+  }
+  return [...out].sort(wellOrder);
+}
+
+function normWell(t) {
+  const m = /^([A-Z]{1,2})0*(\d{1,3})$/.exec((t || "").trim().toUpperCase());
+  return m ? `${m[1]}${m[2]}` : t;
+}
+
+function selectionFromField() {
+  ui.selected = new Set(expandWells(wellsOfField()));
+  drawMap();
+}
+
+function selectionToField(gesture) {
+  if (gesture && gesture.length) $("cond-wells").value = gesture.sort(wellOrder).join(", ");
+  $("tl-form").wells.value = [...ui.selected].sort(wellOrder).join(", ");
+  $("map-help").textContent = ui.selected.size
+    ? `${plural(ui.selected.size, "well")} selected for the plan.`
+    : "Click a well to move there. Shift-click or drag across wells to select them for a plan.";
+  scheduleCheck();
+}
+
+async function loadVessel(name) {
+  const v = await api(name ? `/vessels/${encodeURIComponent(name)}` : "/vessel").catch(() => null);
+  if (!v) return;
+  v.wellsByName = Object.fromEntries(v.wells.map((w) => [w.name, w]));
+  ui.vessel = v;
+  $("vessel-name").textContent = `${v.name}${v.mapped ? "" : " (not the mapped vessel: clicks do not move)"}`;
+  selectionFromField();
+}
+
+// What the latest frames and alerts say about each well.
+function wellStates() {
+  const out = {};
+  const d = ui.detail;
+  if (!d) return out;
+  const planned = new Set((d.positions || []).map((k) => k.replace(/-\d+$/, "")));
+  for (const w of planned) out[w] = { inPlan: true, confluence: null, focusTrouble: false, alert: false };
+  for (const p of d.latest || []) {
+    const o = out[p.well] || (out[p.well] = { inPlan: true, confluence: null, focusTrouble: false, alert: false });
+    if (p.confluence !== null && p.confluence !== undefined) o.confluence = Math.max(o.confluence || 0, p.confluence);
+    if (p.focus_found === 0 || p.focus_found === false) o.focusTrouble = true;
+  }
+  for (const a of ui.alerts) {
+    if (a.timelapse_id !== d.id || a.level === "info") continue;
+    for (const m of (a.message || "").matchAll(/\b([A-P]\d{1,2})(?:-\d+)?\b/g)) if (out[m[1]]) out[m[1]].alert = true;
+  }
+  return out;
+}
+
+function planConditions() {
+  const d = ui.detail;
+  const out = {};
+  if (d && d.plan && d.plan.conditions) for (const g of d.plan.conditions) for (const w of g.wells) out[w] = g.label;
+  return out;
+}
+
+function drawMap() {
+  const svg = $("vessel-map");
+  const v = ui.vessel;
+  if (!svg || !v) return;
+  svg.replaceChildren();
+  const pad = 7;
+  svg.setAttribute("viewBox", `${-pad} ${-pad} ${v.length_mm + pad + 2} ${v.width_mm + pad + 2}`);
+  const body = v.kind === "dish"
+    ? sv("ellipse", { cx: v.length_mm / 2, cy: v.width_mm / 2, rx: v.length_mm / 2, ry: v.width_mm / 2, class: "map-body" }, svg)
+    : sv("rect", { x: 0, y: 0, width: v.length_mm, height: v.width_mm, rx: Math.min(4, v.width_mm / 10), class: "map-body" }, svg);
+  void body;
+  const grid = v.rows * v.columns > 1;
+  if (grid) {
+    const cols = new Map(), rows = new Map();
+    for (const w of v.wells) { cols.set(w.column, w.x_mm); rows.set(w.row, w.y_mm); }
+    const size = Math.min(3.2, Math.max(1.6, (v.pitch_x_mm || 9) * 0.4));
+    for (const [c, x] of cols) sv("text", { x, y: -2, class: "map-label", "text-anchor": "middle", "font-size": size }, svg).textContent = String(c + 1);
+    for (const [r, y] of rows) sv("text", { x: -2.5, y: y + size / 3, class: "map-label", "text-anchor": "middle", "font-size": size }, svg).textContent = String.fromCharCode(65 + r);
+  }
+  const states = wellStates();
+  const running = planConditions();
+  const labels = conditionLabels();
+  for (const l of Object.values(running)) if (!labels.includes(l)) labels.push(l);
+  for (const w of v.wells) {
+    const st = states[w.name] || {};
+    const cls = ["map-well"];
+    if (st.inPlan) cls.push("in-plan");
+    if (ui.selected.has(w.name)) cls.push("selected");
+    if (st.focusTrouble) cls.push("focus-trouble");
+    if (st.alert) cls.push("alerted");
+    const g = sv("g", { class: cls.join(" "), "data-well": w.name, tabindex: 0, role: "button" }, svg);
+    const title = [`${w.name}`];
+    const attrs = w.shape === "circle"
+      ? ["circle", { cx: w.x_mm, cy: w.y_mm, r: w.diameter_mm / 2 }]
+      : ["rect", { x: w.x_mm - (w.size_x_mm || w.diameter_mm) / 2, y: w.y_mm - (w.size_y_mm || w.diameter_mm) / 2,
+        width: w.size_x_mm || w.diameter_mm, height: w.size_y_mm || w.diameter_mm, rx: 0.6 }];
+    const shape = sv(attrs[0], { ...attrs[1], class: "well-shape" }, g);
+    if (st.confluence !== null && st.confluence !== undefined) {
+      // Teal deepens with cover: read at a glance, exact value on hover.
+      shape.style.fillOpacity = String(0.15 + 0.8 * st.confluence);
+      shape.classList.add("has-conf");
+      title.push(`${Math.round(100 * st.confluence)} % covered`);
+    }
+    const cond = (ui.conditions[w.name] && ui.conditions[w.name].label) || running[w.name];
+    if (cond) {
+      const r = Math.max(0.9, Math.min(w.diameter_mm, w.size_y_mm || w.diameter_mm) * 0.17);
+      sv("circle", { cx: w.x_mm, cy: w.y_mm, r, class: `cond-dot cond-${labels.indexOf(cond) % 6}` }, g);
+      title.push(`condition: ${cond}`);
+    }
+    if (st.focusTrouble) title.push("focus not found");
+    if (st.alert) title.push("alert");
+    if (st.inPlan) title.push("in the time-lapse");
+    sv("title", {}, g).textContent = title.join(" · ");
+  }
+  sv("g", { id: "map-stage", class: "map-stage" }, svg);
+  drawStageMarker();
+  drawLegend(labels);
+}
+
+function drawLegend(labels) {
+  const box = $("map-legend");
+  box.replaceChildren();
+  const items = [["lg-plan", "in the time-lapse"], ["lg-selected", "selected for a new plan"], ["lg-conf", "deeper teal: more covered"],
+    ["lg-focus", "focus not found"], ["lg-alert", "alert"], ["lg-stage", "objective is here"]];
+  for (const [cls, text] of items) {
+    const s = el("span", { class: "lg" });
+    s.append(el("span", { class: `lg-mark ${cls}` }), document.createTextNode(text));
+    box.append(s);
+  }
+  labels.forEach((l, i) => {
+    const s = el("span", { class: "lg" });
+    s.append(el("span", { class: `lg-mark lg-cond cond-${i % 6}` }), document.createTextNode(l));
+    box.append(s);
+  });
+}
+
+function drawStageMarker() {
+  const g = $("map-stage");
+  const s = ui.status;
+  if (!g) return;
+  g.replaceChildren();
+  const here = s && s.vessel_position;
+  if (!here || !ui.vessel || here.vessel !== ui.vessel.name) { g.dataset.at = ""; return; }
+  const v = ui.vessel;
+  // Off the vessel the mark waits at the nearest edge, as an arrow-less ring, so the map says where the stage went.
+  const x = Math.min(Math.max(here.x_mm, -3), v.length_mm + 3), y = Math.min(Math.max(here.y_mm, -3), v.width_mm + 3);
+  const r = Math.max(1.5, (v.pitch_x_mm || 9) * 0.28);
+  sv("circle", { cx: x, cy: y, r, class: "stage-ring" }, g);
+  sv("line", { x1: x - 2 * r, x2: x + 2 * r, y1: y, y2: y, class: "stage-cross" }, g);
+  sv("line", { x1: x, x2: x, y1: y - 2 * r, y2: y + 2 * r, class: "stage-cross" }, g);
+  g.dataset.at = `${here.x_mm.toFixed(2)},${here.y_mm.toFixed(2)}`;
+  g.dataset.onVessel = here.on_vessel ? "yes" : "no";
+}
+
+function wellAtEvent(ev) {
+  const t = document.elementFromPoint(ev.clientX, ev.clientY);
+  const g = t && t.closest ? t.closest("[data-well]") : null;
+  return g ? g.getAttribute("data-well") : null;
+}
+
+function rectWells(a, b) {
+  const v = ui.vessel, wa = v.wellsByName[a], wb = v.wellsByName[b];
+  const [r0, r1] = [Math.min(wa.row, wb.row), Math.max(wa.row, wb.row)];
+  const [c0, c1] = [Math.min(wa.column, wb.column), Math.max(wa.column, wb.column)];
+  return v.wells.filter((w) => w.row >= r0 && w.row <= r1 && w.column >= c0 && w.column <= c1).map((w) => w.name);
+}
+
+function wireMap() {
+  const svg = $("vessel-map");
+  let drag = null;
+  svg.addEventListener("pointerdown", (ev) => {
+    const w = wellAtEvent(ev);
+    if (!w) return;
+    ev.preventDefault();
+    drag = { start: w, now: w, moved: false, shift: ev.shiftKey, before: new Set(ui.selected) };
+  });
+  svg.addEventListener("pointermove", (ev) => {
+    if (!drag) return;
+    const w = wellAtEvent(ev);
+    if (!w || w === drag.now) return;
+    drag.now = w;
+    drag.moved = true;
+    ui.selected = new Set([...(drag.shift ? drag.before : []), ...rectWells(drag.start, w)]);
+    drawMap();
+  });
+  const finish = (ev) => {
+    if (!drag) return;
+    const d = drag;
+    drag = null;
+    if (d.moved) { ui.lastClicked = d.now; selectionToField(rectWells(d.start, d.now)); return; }
+    const w = d.start;
+    let gesture = [w];
+    if (ev.shiftKey && ui.lastClicked && ui.vessel.wellsByName[ui.lastClicked]) {
+      gesture = rectWells(ui.lastClicked, w);
+      for (const n of gesture) ui.selected.add(n);
+    } else if (ev.shiftKey || ev.ctrlKey || ev.metaKey || ui.mapMode === "select") {
+      if (ui.selected.has(w)) { ui.selected.delete(w); gesture = []; } else ui.selected.add(w);
+    } else {
+      goToWell(w);
+      return;
+    }
+    ui.lastClicked = w;
+    drawMap();
+    selectionToField(gesture);
+  };
+  svg.addEventListener("pointerup", finish);
+  svg.addEventListener("pointerleave", () => { if (drag && drag.moved) finish({ shiftKey: false }); else drag = null; });
+  svg.addEventListener("keydown", (ev) => {
+    const g = ev.target.closest && ev.target.closest("[data-well]");
+    if (g && (ev.key === "Enter" || ev.key === " ")) { ev.preventDefault(); goToWell(g.getAttribute("data-well")); }
+  });
+  for (const [id, mode] of [["map-mode-go", "go"], ["map-mode-select", "select"]]) {
+    $(id).addEventListener("click", () => {
+      ui.mapMode = mode;
+      $("map-mode-go").setAttribute("aria-pressed", String(mode === "go"));
+      $("map-mode-select").setAttribute("aria-pressed", String(mode === "select"));
+    });
+  }
+}
+
+async function goToWell(w) {
+  if (!ui.vessel.mapped) { toast(`the stage is mapped to another vessel; ${w} of ${ui.vessel.name} has no stage position`, "warn"); return; }
+  if (!ui.token) { toast("sign in to move the stage", "warn"); return; }
+  $("well-input").value = w;
+  toast(`moving to ${w}…`);
+  await move({ well: w });
+}
+
+// -- the position viewer --------------------------------------------------------------
+
+async function openViewer(key) {
+  const d = ui.detail;
+  if (!d) return;
+  closeViewer();
+  const page = await api(`/timelapses/${d.id}/frames?position=${encodeURIComponent(key)}&limit=1000`).catch(() => null);
+  if (!page) return;
+  const zs = d.plan && d.plan.z_stack ? d.plan.z_stack.count : 1;
+  const plane = zs > 1 ? Math.floor(zs / 2) : 0;
+  let rows = page.frames.filter((f) => f.z_index === plane && f.status === "ok");
+  const kind = rows.some((f) => f.kind === "corrected") ? "corrected" : "raw";
+  rows = rows.filter((f) => f.kind === kind).sort((a, b) => a.tp - b.tp);
+  if (!rows.length) { toast(`no frames of ${key} yet`, "warn"); return; }
+  ui.viewer = { key, frames: rows, index: rows.length - 1, timer: null };
+  const well = key.replace(/-\d+$/, "");
+  const cond = planConditions()[well];
+  $("viewer-h").textContent = `${key} · ${plural(rows.length, "time point")}`;
+  $("viewer-cond").textContent = cond ? `condition: ${cond}` : "";
+  $("viewer-scrub").max = String(rows.length - 1);
+  $("viewer-movie").href = `${API}/timelapses/${d.id}/positions/${encodeURIComponent(key)}/movie.mp4`;
+  $("viewer-movie").setAttribute("download", `${d.name.replace(/[^A-Za-z0-9._-]+/g, "_")}-${key}.mp4`);
+  $("viewer").dataset.position = key;
+  showFrame(rows.length - 1);
+  $("viewer").showModal();
+}
+
+function showFrame(i) {
+  const vw = ui.viewer;
+  if (!vw) return;
+  vw.index = Math.max(0, Math.min(vw.frames.length - 1, i));
+  const f = vw.frames[vw.index];
+  const d = ui.detail;
+  const img = $("viewer-img");
+  img.src = `${API}/timelapses/${d.id}/frames/${f.id}/preview.jpg?width=${Math.min(f.width_px, 1280)}`;
+  img.dataset.frame = String(f.id);
+  img.dataset.tp = String(f.tp);
+  $("viewer-scrub").value = String(vw.index);
+  $("viewer-pos").textContent = `time point ${f.tp} · ${vw.index + 1} of ${vw.frames.length}`;
+  $("viewer-time").textContent = `${ago(f.t_s - d.t0_s)} after the start · ${clock(f.t_s)}`;
+  $("viewer-tiff").href = `${API}/timelapses/${d.id}/frames/${f.id}`;
+  drawScaleBar();
+}
+
+// Scale bar: a 1-2-5 length near a fifth of the shown width, from the pixel size and the shown scale.
+function drawScaleBar() {
+  const vw = ui.viewer;
+  const img = $("viewer-img");
+  if (!vw || !img.clientWidth) return;
+  const f = vw.frames[vw.index];
+  const umPerCssPx = f.pixel_size_um * f.width_px / img.clientWidth;
+  const target = img.clientWidth * 0.2 * umPerCssPx;
+  const nice = [1, 2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000].filter((v) => v <= target);
+  const um = nice.length ? nice[nice.length - 1] : 1;
+  $("viewer-bar-line").style.width = `${(um / umPerCssPx).toFixed(1)}px`;
+  $("viewer-bar-label").textContent = um >= 1000 ? `${um / 1000} mm` : `${um} µm`;
+  $("viewer-bar").dataset.um = String(um);
+}
+
+function playViewer() {
+  const vw = ui.viewer;
+  if (!vw) return;
+  if (vw.timer) { clearInterval(vw.timer); vw.timer = null; $("viewer-play").textContent = "Play"; return; }
+  if (vw.index >= vw.frames.length - 1) showFrame(0);
+  $("viewer-play").textContent = "Stop";
+  vw.timer = setInterval(() => {
+    if (vw.index >= vw.frames.length - 1) { clearInterval(vw.timer); vw.timer = null; $("viewer-play").textContent = "Play"; return; }
+    showFrame(vw.index + 1);
+  }, 400);
+}
+
+function closeViewer() {
+  const vw = ui.viewer;
+  if (vw && vw.timer) clearInterval(vw.timer);
+  ui.viewer = null;
+  if ($("viewer").open) $("viewer").close();
+  $("viewer").classList.remove("full");
+}
+
+function wireViewer() {
+  $("viewer-close").addEventListener("click", closeViewer);
+  $("viewer").addEventListener("close", () => { const vw = ui.viewer; if (vw && vw.timer) clearInterval(vw.timer); ui.viewer = null; });
+  $("viewer-scrub").addEventListener("input", () => showFrame(Number($("viewer-scrub").value)));
+  $("viewer-play").addEventListener("click", playViewer);
+  $("viewer-img").addEventListener("load", drawScaleBar);
+  $("viewer-large").addEventListener("click", () => {
+    const full = $("viewer").classList.toggle("full");
+    $("viewer-large").textContent = full ? "Smaller" : "Full size";
+    requestAnimationFrame(drawScaleBar);
+  });
+  $("viewer").addEventListener("keydown", (ev) => {
+    if (ev.key === "ArrowRight") showFrame(ui.viewer.index + 1);
+    if (ev.key === "ArrowLeft") showFrame(ui.viewer.index - 1);
+  });
+  window.addEventListener("resize", drawScaleBar);
+}
+
 // -- wells and trends -----------------------------------------------------------------
 
 function wellHealth(pos) {
@@ -444,21 +944,45 @@ function renderWells(latest) {
     return;
   }
   const series = ui.series ? ui.series.positions : {};
+  const conds = planConditions();
   for (const pos of latest) {
-    const card = el("figure", { class: "well-card", "data-health": wellHealth(pos) });
+    const card = el("figure", { class: "well-card", "data-health": wellHealth(pos), "data-position": pos.key });
+    const open = el("button", { type: "button", class: "card-open", title: `look through the frames of ${pos.key}` });
     const img = el("img", { alt: `latest frame of ${pos.key}`, loading: "lazy" });
     img.src = `${API}/timelapses/${ui.detail.id}/frames/${pos.id}/preview.jpg?width=320`;
+    open.append(img);
+    open.addEventListener("click", () => openViewer(pos.key));
     const cap = el("figcaption");
     cap.append(el("strong", {}, pos.key));
-    cap.append(el("span", { class: "conf" }, pos.confluence === null ? "confluence —" : `${(100 * pos.confluence).toFixed(1)} % covered`));
+    if (conds[pos.well]) cap.append(el("span", { class: "cond-tag" }, conds[pos.well]));
+    cap.append(el("span", { class: "conf" }, pos.confluence === null ? "confluence —" : `${(100 * pos.confluence).toFixed(0)} % covered`));
     cap.append(el("span", { class: "hint" }, `time point ${pos.tp} · ${pos.focus_found === 0 ? "focus not found" : "in focus"}`));
     const spark = document.createElementNS("http://www.w3.org/2000/svg", "svg");
     spark.setAttribute("class", "spark-svg");
+    spark.setAttribute("aria-label", `confluence of ${pos.key} over time`);
     const s = series[pos.key];
     if (s) plots().sparkline(spark, s.confluence);
-    card.append(img, cap, spark);
+    card.append(open, cap, spark);
     grid.append(card);
   }
+}
+
+// A doubling time needs data over a good part of one doubling: confluence read off a frame
+// varies by a few per cent, so growth over much less than half a doubling, or under two
+// hours, is within that scatter (a judgement of this program, not a published rule).
+const MIN_FIT_SPAN_H = 2;
+const MIN_FIT_SPAN_DOUBLINGS = 0.5;
+
+function growthNote(label, w) {
+  const g = w.growth;
+  const span = w.t_h.length ? w.t_h[w.t_h.length - 1] - w.t_h[0] : 0;
+  const need = Math.max(MIN_FIT_SPAN_H, g && g.ok && g.doubling_time_h ? MIN_FIT_SPAN_DOUBLINGS * g.doubling_time_h : 0);
+  if (span < need) return `${label}: not enough time yet for a doubling time (${ago(span * 3600)} of data, needs ${ago(need * 3600)})`;
+  if (g && g.ok && g.doubling_time_h) {
+    const err = g.doubling_time_err_h ? ` ± ${g.doubling_time_err_h.toFixed(1)}` : "";
+    return `${label}: doubling time ${g.doubling_time_h.toFixed(1)}${err} h (${g.model})`;
+  }
+  return `${label}: ${g ? g.note : "no growth fit yet"}`;
 }
 
 function renderTrends() {
@@ -469,16 +993,26 @@ function renderTrends() {
   if (s) for (const p of Object.values(s.positions)) span = Math.max(span, ...p.t_h);
   const perHour = span < 2 ? 60 : 1;
   const unit = perHour === 60 ? "min" : "h";
+  let legendItems;
   if (s) {
-    for (const [well, w] of Object.entries(s.wells)) {
-      conf.push({ name: well, points: w.t_h.map((t, i) => [t * perHour, w.confluence[i] === null ? null : 100 * w.confluence[i]]) });
-      const g = w.growth;
-      if (g && g.ok && g.doubling_time_h) notes.push(`${well}: doubling time ${g.doubling_time_h.toFixed(1)} h (${g.model})`);
-      else if (g) notes.push(`${well}: ${g.note}`);
+    const labels = [];
+    for (const w of Object.values(s.wells)) if (w.condition && !labels.includes(w.condition)) labels.push(w.condition);
+    const grouped = labels.length > 0;
+    const entries = Object.entries(s.wells).sort((a, b) => (a[1].condition || "").localeCompare(b[1].condition || "") || wellOrder(a[0], b[0]));
+    entries.forEach(([well, w], i) => {
+      // Grouped by condition: every well of a condition in that condition's colour.
+      const cls = grouped ? `series-${(w.condition ? labels.indexOf(w.condition) : labels.length) % 6}` : `series-${i % 6}`;
+      conf.push({ name: grouped ? `${well} · ${w.condition || "no condition"}` : well, cls,
+        points: w.t_h.map((t, k) => [t * perHour, w.confluence[k] === null ? null : 100 * w.confluence[k]]) });
+      notes.push(growthNote(w.condition ? `${well} (${w.condition})` : well, w));
+    });
+    if (grouped) {
+      legendItems = labels.map((l, i) => ({ name: l, cls: `series-${i % 6}` }));
+      if (entries.some(([, w]) => !w.condition)) legendItems.push({ name: "no condition", cls: `series-${labels.length % 6}` });
     }
     for (const [key, p] of Object.entries(s.positions)) focus.push({ name: key, points: p.t_h.map((t, i) => [t * perHour, p.focus_score[i]]) });
   }
-  plots().linePlot($("conf-plot"), { series: conf, xLabel: `time since start (${unit})`, yLabel: "confluence (%)", yMin: 0,
+  plots().linePlot($("conf-plot"), { series: conf, legendItems, xLabel: `time since start (${unit})`, yLabel: "confluence (%)", yMin: 0,
     xMin: 0, empty: "confluence appears here as time points come in" });
   plots().linePlot($("focus-plot"), { series: focus, xLabel: `time since start (${unit})`, yLabel: "focus score",
     xMin: 0, empty: "focus score of every frame appears here" });
@@ -605,12 +1139,13 @@ async function startAll() {
   startLive();
   connectEvents();
   drawCurve();
-  await Promise.all([refreshAlerts(), refreshTimelapse(), refreshCalibration()]);
+  await Promise.all([refreshAlerts(), refreshTimelapse(), refreshCalibration(), loadVessel(null)]);
   const demo = await api("/plans/demo").catch(() => null);
   if (demo && !$("tl-f-name").value) {
     fillForm(demo.plan);
     $("tl-estimate").textContent = `Demo plan. ${describeEstimate(demo)}`;
   }
+  renderConditions();
   setInterval(refreshStatus, 2000);
   setInterval(refreshTimelapse, 15000);
   setInterval(refreshAlerts, 30000);
@@ -667,6 +1202,16 @@ function wire() {
   $("tl-resume").addEventListener("click", () => control("resume"));
   $("tl-abort").addEventListener("click", () => control("abort"));
   $("tl-export").addEventListener("click", exportTimelapse);
+  for (const id of ["tl-f-interval", "tl-f-duration"]) {
+    $(id).addEventListener("input", () => { ui.lastEstimate = null; renderTiming(); scheduleCheck(); });
+  }
+  $("tl-f-wells").addEventListener("change", () => { selectionFromField(); scheduleCheck(); });
+  $("tl-f-vessel").addEventListener("change", () => loadVessel($("tl-f-vessel").value.trim()));
+  $("tl-f-sites").addEventListener("change", scheduleCheck);
+  $("cond-apply").addEventListener("click", () => applyCondition(false));
+  $("cond-clear").addEventListener("click", () => applyCondition(true));
+  wireMap();
+  wireViewer();
 }
 
 document.addEventListener("DOMContentLoaded", async () => {

@@ -33,7 +33,8 @@ function fmtTick(v) {
 //            yMin, yMax, empty})
 function linePlot(svg, opts) {
   while (svg.firstChild) svg.removeChild(svg.firstChild);
-  const legend = opts.legend !== false && opts.series.length > 1;
+  const legendItems = opts.legendItems || opts.series.map((s, i) => ({ name: s.name, cls: s.cls || `series-${i % 6}` }));
+  const legend = opts.legend !== false && legendItems.length > 1;
   const W = 560, H = 240, L = 58, R = 14, T = legend ? 30 : 14, B = 40;
   svg.setAttribute("role", "img");
   const all = [];
@@ -97,8 +98,8 @@ function linePlot(svg, opts) {
   if (legend) {
     const g = svgEl("g", { class: "plot-legend" }, svg);
     let x = L + 4;
-    opts.series.forEach((s, i) => {
-      const cls = s.cls || `series-${i % 6}`;
+    legendItems.forEach((s) => {
+      const cls = s.cls;
       svgEl("rect", { x, y: 6, width: 10, height: 10, class: `plot-swatch ${cls}` }, g);
       const t = svgEl("text", { x: x + 14, y: 15 }, g);
       t.textContent = s.name;
@@ -107,16 +108,26 @@ function linePlot(svg, opts) {
   }
 }
 
-// A sparkline: a tiny line without axes, for well cards.
-function sparkline(svg, values, yMax) {
+// A sparkline: a small filled line without axes, for well cards. The range is the data's
+// own (a culture near 40 % that grows by 3 % still shows its rise); the last value is dotted.
+function sparkline(svg, values) {
   while (svg.firstChild) svg.removeChild(svg.firstChild);
-  const W = 120, H = 28;
+  const W = 160, H = 36;
   svg.setAttribute("viewBox", `0 0 ${W} ${H}`);
+  svg.setAttribute("preserveAspectRatio", "none");
   const v = values.filter((x) => x !== null && isFinite(x));
-  if (v.length < 2) return;
-  const hi = yMax !== undefined ? yMax : Math.max(...v), lo = 0;
-  const pts = v.map((y, i) => `${(i / (v.length - 1)) * (W - 4) + 2},${H - 2 - ((y - lo) / (hi - lo || 1)) * (H - 4)}`);
-  svgEl("polyline", { points: pts.join(" "), class: "spark" }, svg);
+  svgEl("line", { x1: 0, x2: W, y1: H - 1, y2: H - 1, class: "spark-base" }, svg);
+  if (!v.length) return;
+  let lo = Math.min(...v), hi = Math.max(...v);
+  if (hi - lo < 0.02) { const mid = (hi + lo) / 2; lo = mid - 0.01; hi = mid + 0.01; }
+  const x = (i) => (v.length === 1 ? W / 2 : 4 + (i / (v.length - 1)) * (W - 8));
+  const y = (c) => H - 4 - ((c - lo) / (hi - lo)) * (H - 8);
+  const pts = v.map((c, i) => `${x(i).toFixed(1)},${y(c).toFixed(1)}`);
+  if (v.length > 1) {
+    svgEl("polygon", { points: `${x(0)},${H - 1} ${pts.join(" ")} ${x(v.length - 1)},${H - 1}`, class: "spark-area" }, svg);
+    svgEl("polyline", { points: pts.join(" "), class: "spark" }, svg);
+  }
+  svgEl("circle", { cx: x(v.length - 1), cy: y(v[v.length - 1]), r: 3, class: "spark-dot" }, svg);
 }
 
 window.phasewatchPlots = { linePlot, sparkline, niceTicks };
