@@ -108,6 +108,7 @@ def test_scheduled_faults_strike_the_controller_on_its_clock() -> None:
         assert client.read_line() == BANNER.encode()
         assert wait_until(lambda: not os.path.exists(link), timeout_s=5.0)
         assert wait_until(lambda: os.path.exists(link), timeout_s=5.0)  # plugged back in
+        assert wait_until(lambda: len(emulator.faults_struck) == 3, timeout_s=5.0)
         assert [f for _t, f in emulator.faults_struck] == ["reset", "disconnect", "reconnect"]
         times = [t for t, _f in emulator.faults_struck]
         assert times[0] >= 20.0 and times[1] >= 40.0 and times[2] >= 70.0

@@ -26,13 +26,14 @@ def run(args: argparse.Namespace) -> int:
     from daemon.archive import Archive
     from daemon.timelapse.resume import open_for_reading
 
-    if args.output is None and not os.access(args.data, os.W_OK):
-        raise PermissionError(
-            13, f"{args.data} is read-only; name a folder to write the export to with --output DIR", str(args.data)
-        )
     index, note = open_for_reading(args.data)
     if note:
         print(note, file=sys.stderr)
+    if args.output is None and not os.access(args.data, os.W_OK):
+        index.close()
+        raise PermissionError(
+            13, f"{args.data} is read-only; name a folder to write the export to with --output DIR", str(args.data)
+        )
     with index:
         made = Archive(args.data, index).make_exports(args.id, folder=args.output, stacks=args.stacks, kind=args.kind)
     print(f"wrote {made.frames_csv} ({made.frames} frames), {made.time_points_csv}, "

@@ -178,7 +178,7 @@ def open_for_reading(data_dir: Path, *, write: bool = False) -> tuple[Index, str
     """
     path = data_dir / INDEX_FILE
     if not data_dir.is_dir():
-        raise FileNotFoundError(2, f"{data_dir}: no such data folder", str(data_dir))
+        raise OSError(f"{data_dir}: no phasewatch index here (no such folder)")
     problem = index_problem(path) if path.exists() else ("the index is missing" if has_frames(data_dir) else None)
     if problem is None and not path.exists():
         raise OSError(f"{data_dir}: no phasewatch index here (no time-lapse was run with --data {data_dir})")
