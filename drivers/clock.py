@@ -47,6 +47,8 @@ _SLEEP_STEP_REAL_S = 0.05
 _UNTIMED: contextvars.ContextVar[bool] = contextvars.ContextVar("clock_untimed", default=False)
 # Set in the task that holds the clock: its own sleeps are modelled time passing.
 _HOLDER: contextvars.ContextVar[object | None] = contextvars.ContextVar("clock_holder", default=None)
+# How many holds this task has open: released() lifts its own, never another task's.
+_OWN_HOLDS: contextvars.ContextVar[int] = contextvars.ContextVar("clock_own_holds", default=0)
 
 
 @contextlib.contextmanager
@@ -214,9 +216,11 @@ class ScaledClock:
             self._update()
             self._hold_depth += 1
         token = _HOLDER.set(self) if _HOLDER.get() is None else None
+        own = _OWN_HOLDS.set(_OWN_HOLDS.get() + 1)
         try:
             yield
         finally:
+            _OWN_HOLDS.reset(own)
             if token is not None:
                 _HOLDER.reset(token)
             with self._lock:
@@ -229,15 +233,16 @@ class ScaledClock:
     @contextlib.contextmanager
     def released(self) -> Iterator[None]:
         """Inside :meth:`held`: let the clock run for the block (the holder waits idle)."""
+        own = _OWN_HOLDS.get() if self._holds_here() else 0
         with self._lock:
             self._update()
-            depth, self._hold_depth = self._hold_depth, 0
+            self._hold_depth -= own
         try:
             yield
         finally:
             with self._lock:
                 self._update()
-                self._hold_depth = depth
+                self._hold_depth += own
 
     def is_held(self) -> bool:
         with self._lock:
@@ -271,6 +276,11 @@ class ScaledClock:
         """Sleep ``seconds`` of simulated time. The holder's own sleeps are modelled time
         (exposure, settle): while held they pass exactly, after waiting them out at speed."""
         seconds = max(0.0, seconds)
+        if _UNTIMED.get():
+            # Untimed work (a live frame's exposure) waits its time at speed in real time and
+            # costs nobody simulated time: it neither waits for a held clock nor moves it.
+            await asyncio.sleep(seconds / self.speed)
+            return
         if self._holds_here() and self.is_held():
             target = self.now() + seconds
             await asyncio.sleep(seconds / self.speed)

@@ -38,7 +38,7 @@ async def test_live_viewers_never_hold_the_clock() -> None:
         assert advanced >= 0.5 * 1000.0 * real
 
 
-async def _time_points(speed: float, tmp: Path) -> tuple[list[float], float]:
+async def _time_points(speed: float, tmp: Path, *, viewer: bool = False) -> tuple[list[float], float]:
     profile = sim_profile()
     plan = Plan(name="clock check", vessel="96-well", wells=["B2", "B3", "C2"], sites_per_well=1, interval_s=120.0,
                 count=3, autofocus="track", z_stack=None, exposure_ms=None, gain_db=None, correction=False, save="raw")
@@ -47,7 +47,15 @@ async def _time_points(speed: float, tmp: Path) -> tuple[list[float], float]:
     index = open_index(tmp)
     async with sim_scope(profile, speed=speed, data_dir=tmp) as scope:
         scheduler = Scheduler.create(scope, plan, tmp, index, positions, reserve_mb=0.0)
-        await scheduler.run()
+        if viewer:
+            # Someone watching live: its frames wait at speed and never for the held clock.
+            live = LiveView(scope)
+            async with live.watching(fps=10.0):
+                async with asyncio.timeout(120.0):
+                    await scheduler.run()
+            await live.close()
+        else:
+            await scheduler.run()
     rows = index.time_points(scheduler.id)
     index.close()
     assert [r["status"] for r in rows] == ["done"] * 3
@@ -56,9 +64,9 @@ async def _time_points(speed: float, tmp: Path) -> tuple[list[float], float]:
     return [r["finished_s"] - r["started_s"] for r in rows], estimate
 
 
-@pytest.mark.parametrize("speed", [60.0, 1000.0])
-async def test_time_points_last_the_estimate_at_any_speed(speed: float, tmp_path: Path) -> None:
-    durations, estimate = await _time_points(speed, tmp_path)
+@pytest.mark.parametrize(("speed", "viewer"), [(60.0, False), (1000.0, False), (1000.0, True)])
+async def test_time_points_last_the_estimate_at_any_speed(speed: float, viewer: bool, tmp_path: Path) -> None:
+    durations, estimate = await _time_points(speed, tmp_path, viewer=viewer)
     # Steady-state time points (tracking focus) against the plan check's estimate; the first
     # one runs a cold search, estimated with the full frame budget, and is only bounded.
     for d in durations[1:]:
