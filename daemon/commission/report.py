@@ -24,6 +24,7 @@ import tomlkit
 
 from daemon.commission.run import CommissionResult
 from daemon.commission.settle import TOLERANCE_PX
+from drivers import atomic
 
 if TYPE_CHECKING:
     from daemon.profile import Profile
@@ -348,7 +349,8 @@ def write_plots(result: CommissionResult, truth: Truth | None, folder: Path) -> 
     right.set_aspect("equal")
     fig.tight_layout()
     out["registration"] = folder / "registration.png"
-    fig.savefig(out["registration"], dpi=100)
+    with atomic.open_atomic(out["registration"]) as fh:
+        fig.savefig(fh, format="png", dpi=100)
     plt.close(fig)
 
     fig, axes = plt.subplots(1, 3, figsize=(14, 4.5))
@@ -374,7 +376,8 @@ def write_plots(result: CommissionResult, truth: Truth | None, folder: Path) -> 
     ax.legend(fontsize=8)
     fig.tight_layout()
     out["backlash"] = folder / "backlash.png"
-    fig.savefig(out["backlash"], dpi=100)
+    with atomic.open_atomic(out["backlash"]) as fh:
+        fig.savefig(fh, format="png", dpi=100)
     plt.close(fig)
 
     fig, axes = plt.subplots(1, len(result.settle), figsize=(6 * len(result.settle), 4.5), squeeze=False)
@@ -393,7 +396,8 @@ def write_plots(result: CommissionResult, truth: Truth | None, folder: Path) -> 
         ax.legend(fontsize=8)
     fig.tight_layout()
     out["settle"] = folder / "settle.png"
-    fig.savefig(out["settle"], dpi=100)
+    with atomic.open_atomic(out["settle"]) as fh:
+        fig.savefig(fh, format="png", dpi=100)
     plt.close(fig)
     return out
 
@@ -408,9 +412,9 @@ def write_results(result: CommissionResult, profile: Profile, truth: Truth | Non
         "profile patch": folder / "profile-patch.toml",
         "profile": folder / profile.path.name,
     }
-    files["profile patch"].write_text(patch_toml(values, profile, result.started_wall), encoding="utf-8")
-    files["profile"].write_text(patched_profile_text(profile.path.read_text(encoding="utf-8"), values), encoding="utf-8")
+    atomic.write_text(files["profile patch"], patch_toml(values, profile, result.started_wall), encoding="utf-8")
+    atomic.write_text(files["profile"], patched_profile_text(profile.path.read_text(encoding="utf-8"), values), encoding="utf-8")
     files.update({f"{name} plot": path for name, path in write_plots(result, truth, folder).items()})
     report["files"] = {name: str(path) for name, path in files.items()}
-    files["report"].write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    atomic.write_text(files["report"], json.dumps(report, indent=2) + "\n", encoding="utf-8")
     return report
