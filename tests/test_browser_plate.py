@@ -23,6 +23,7 @@ import imageio.v2 as imageio
 import pytest
 import tifffile
 
+import daemon.storage.movie  # noqa: F401 - spawns ffmpeg without fork(), also for the reader below
 from tests.cdp import chromium
 from tests.web_support import served, wait_for, web_profile
 
@@ -64,8 +65,9 @@ SHIFT, CTRL = 8, 2  # CDP modifier bits
 
 async def stop_live(page, srv) -> None:
     """End the live stream before the daemon shuts down, so no frame is mid-render at exit."""
-    await page.evaluate("document.getElementById('live-toggle').click()")
-    await wait_for(lambda: srv.station.live.viewers == 0, timeout_s=10)
+    await page.evaluate("(() => { if (document.getElementById('live-toggle').textContent.startsWith('Pause')) "
+                        "document.getElementById('live-toggle').click(); })()")
+    assert await wait_for(lambda: srv.station.live.viewers == 0, timeout_s=10)
     await asyncio.sleep(0.5)
 
 
@@ -193,6 +195,7 @@ async def test_map_plan_with_conditions_viewer_and_movie(tmp_path):
         head = await page.evaluate(f"""fetch({json.dumps(href)}).then(r => r.arrayBuffer())
           .then(b => [b.byteLength, String.fromCharCode(...new Uint8Array(b.slice(4, 8)))])""")
         assert head[1] == "ftyp" and head[0] > 1000
+        await stop_live(page, srv)
         async with aiohttp.ClientSession() as http:
             async with http.get(href, headers={"Authorization": f"Bearer {srv.token}"}) as r:
                 assert r.status == 200 and r.headers["Content-Type"] == "video/mp4"

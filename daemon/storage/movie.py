@@ -11,12 +11,20 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import os
 from collections.abc import Sequence
 from pathlib import Path
 
 import cv2
 import numpy as np
 import tifffile
+
+# imageio-ffmpeg starts ffmpeg with preexec_fn=os.setpgrp unless told not to, which makes
+# Python fork() rather than vfork(); fork runs the at-fork handlers of SciPy's FFT thread
+# pool, and an FFT another thread of the daemon runs at that moment (the simulated optics,
+# live view) fails with "work item submitted after shutdown". Without it the spawn leaves
+# the pools alone; the daemon stops its children itself, so Ctrl-C reaching ffmpeg is fine.
+os.environ.setdefault("IMAGEIO_FFMPEG_NO_PREVENT_SIGINT", "1")
 
 # Scale bar lengths a reader takes in at a glance (1-2-5 steps; common practice).
 NICE_LENGTHS_UM = (1, 2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000)
