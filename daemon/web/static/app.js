@@ -368,7 +368,8 @@ function renderTimelapse() {
   const over = tp.done + tp.partial + tp.failed + tp.missed;
   $("tl-bar").style.width = `${Math.round(100 * (d.progress_ratio || 0))}%`;
   $("tl-points").textContent = `${over} of ${d.count} over (${tp.done} complete${tp.partial ? `, ${tp.partial} partial` : ""}${tp.failed ? `, ${tp.failed} failed` : ""})`;
-  $("tl-missed").textContent = d.missed.length ? `${d.missed.length}: ${d.missed[d.missed.length - 1].reason}` : "none";
+  const lastMissed = d.missed.length ? `: ${d.missed[d.missed.length - 1].reason}` : "";
+  $("tl-missed").textContent = tp.missed ? `${tp.missed}${lastMissed}` : "none";
   const pr = d.progress;
   if (running && pr) {
     $("tl-now").textContent = d.state === "paused" ? "paused" :
