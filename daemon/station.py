@@ -37,6 +37,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from daemon.archive import Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, PreviewQuery
+from daemon.culture.readings import timelapse_readings
 from daemon.errors import Busy, NoSpace
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
@@ -83,6 +84,16 @@ ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "ab
 NO_SPACE_ERRNOS = (errno.ENOSPC, errno.EDQUOT)
 
 
+@dataclasses.dataclass(frozen=True)
+class WellConfluence:
+    """A well's latest confluence reading and the confluence at which it is to be passaged."""
+
+    timelapse_id: int
+    well: str
+    confluence: float  # fraction 0..1
+    threshold: float  # fraction 0..1
+
+
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class ControlRequest:
     """Pause, resume or abort a time-lapse: no options, so any given is refused as unknown."""
@@ -118,6 +129,7 @@ class Station:
         self._task: asyncio.Task[str] | None = None
         self._progress: dict[str, Any] | None = None
         self._af_seen: set[tuple[int, int, str]] = set()
+        self._wells_cache: tuple[tuple[int, int, int], list[WellConfluence]] | None = None
         self.last_focus: dict[str, Any] | None = None
         self.started_monotonic = time.monotonic()
         self.verify_rate_mb_s = verify_rate_mb_s
@@ -220,6 +232,8 @@ class Station:
                 m.autofocus_runs.labels("timelapse").inc()
                 if not found:
                     m.autofocus_failures.labels("timelapse").inc()
+        elif kind == "time_point" and event.get("status") == TimePointState.MISSED:
+            m.time_points_missed.inc()
         elif kind == "alert":
             level = event.get("level", "warning")
             m.alerts.labels(level if level in ("info", "warning", "error") else "warning").inc()
@@ -444,6 +458,26 @@ class Station:
                 counts[p["status"]] = counts.get(p["status"], 0) + 1
         over = sum(counts.values())
         return {"id": s.id, "state": s.state, "ratio": over / s.count if s.count else 0.0, "time_points": counts}
+
+    def well_confluence_summary(self) -> list[WellConfluence]:
+        """For metrics: each well's confluence at the latest time point of the station's latest
+        time-lapse that gave it a reading, with its passaging threshold (blocking: reads the index).
+        Recomputed only when a time point has ended since the last call."""
+        s = self.scheduler
+        if s is None:
+            return []
+        points = self.index.time_points(s.id)
+        ended = tuple(p["tp"] for p in points if p["status"] in (TimePointState.DONE, TimePointState.PARTIAL))
+        key = (s.id, ended[-1] if ended else -1, len(ended))
+        if self._wells_cache is not None and self._wells_cache[0] == key:
+            return self._wells_cache[1]
+        latest: dict[str, WellConfluence] = {}
+        for r in timelapse_readings(self.index, s.id):  # ordered by well, then time point
+            if r.confluence is not None and r.tp in ended:
+                latest[r.well] = WellConfluence(s.id, r.well, r.confluence, s.watch.rules_for(r.well).confluence_threshold)
+        out = list(latest.values())
+        self._wells_cache = (key, out)
+        return out
 
     def _progress_of(self, s: Scheduler) -> dict[str, Any]:
         now = self.scope.clock.now()
