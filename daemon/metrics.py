@@ -47,6 +47,15 @@ class Metrics:
             "phasewatch_time_points_missed", "Time points recorded as missed (their slot closed before they could run)",
             registry=r,
         )
+        self.offload_copied = Counter(
+            "phasewatch_offload_frames_copied", "Frames copied to lab storage with their checksum read back", registry=r
+        )
+        self.offload_pruned = Counter(
+            "phasewatch_offload_local_files_removed", "Local files of copied frames removed for space", registry=r
+        )
+        self.offload_failures = Counter(
+            "phasewatch_offload_failures", "Copy passes to lab storage that failed (store unreachable, say)", registry=r
+        )
         self.last_confluence = Gauge(
             "phasewatch_confluence_last", "Confluence (0..1) of the latest analysed time-lapse frame", registry=r
         )

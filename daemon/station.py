@@ -54,6 +54,7 @@ from daemon.results import (
     position_json,
 )
 from daemon.storage.index import Index
+from daemon.storage.offload import Offloader, OffloadOptions
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.storage.verify import DEFAULT_RATE_MB_S, VerifyProgress, verify_all
 from daemon.timelapse import timing
@@ -111,6 +112,7 @@ class Station:
         max_fps: float,
         reserve_mb: float = DEFAULT_RESERVE_MB,
         verify_rate_mb_s: float = DEFAULT_RATE_MB_S,
+        offload: OffloadOptions | None = None,
     ) -> None:
         self.profile = profile
         self.scope = scope
@@ -135,6 +137,9 @@ class Station:
         self.verify_rate_mb_s = verify_rate_mb_s
         self.storage_check = VerifyProgress()
         self._verify_task: asyncio.Task[VerifyProgress] | None = None
+        self.offloader = Offloader(data_dir, index, offload) if offload is not None else None
+        self._offload_due = asyncio.Event()
+        self._offload_task: asyncio.Task[None] | None = None
         metrics.attach(self)
 
     # -- life cycle --------------------------------------------------------------------
@@ -146,6 +151,8 @@ class Station:
 
         if self.verify_rate_mb_s > 0:
             self._verify_task = asyncio.create_task(self._verify(), name="background frame check")
+        if self.offloader is not None:
+            self._offload_task = asyncio.create_task(self._offload_loop(), name="copy to lab storage")
         row = await asyncio.to_thread(pick_unfinished, self.index)
         if row is None:
             return
@@ -170,8 +177,37 @@ class Station:
             self.storage_check.error = str(exc)
             return self.storage_check
 
+    async def _offload_loop(self) -> None:
+        """Copy passes on the schedule and after each time point, in their own task: rclone runs
+        as a child process, so a slow or absent lab store never delays acquisition."""
+        assert self.offloader is not None
+        interval_s = self.offloader.options.interval_s
+        while True:
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._offload_due.wait(), interval_s)
+            self._offload_due.clear()
+            try:
+                done = await self.offloader.run_once()
+            except asyncio.CancelledError:
+                raise
+            except Exception:  # noqa: BLE001 - logged; the next pass tries again
+                log.exception("copy to lab storage failed")
+                self.metrics.offload_failures.inc()
+                continue
+            self.metrics.offload_copied.inc(done.copied)
+            self.metrics.offload_pruned.inc(done.pruned)
+            if done.rclone_error is not None:
+                self.metrics.offload_failures.inc()
+            if done.copied or done.pruned or done.rclone_error:
+                log.info("copy to lab storage: %d of %d frames verified, %d local files removed%s", done.copied,
+                         done.candidates, done.pruned, f"; {done.rclone_error}" if done.rclone_error else "")
+
     async def stop(self) -> None:
         """Leave the time-lapse unfinished (resumed on the next start) and stop live view."""
+        if self._offload_task is not None and not self._offload_task.done():
+            self._offload_task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await self._offload_task
         if self._verify_task is not None and not self._verify_task.done():
             self._verify_task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
@@ -234,6 +270,8 @@ class Station:
                     m.autofocus_failures.labels("timelapse").inc()
         elif kind == "time_point" and event.get("status") == TimePointState.MISSED:
             m.time_points_missed.inc()
+        elif kind == "time_point" and event.get("status") in (TimePointState.DONE, TimePointState.PARTIAL):
+            self._offload_due.set()  # the new frames go to lab storage now, not at the next scheduled pass
         elif kind == "alert":
             level = event.get("level", "warning")
             m.alerts.labels(level if level in ("info", "warning", "error") else "warning").inc()

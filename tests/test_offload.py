@@ -146,3 +146,52 @@ async def test_copy_verify_and_prune_with_a_server_that_vanishes(tmp_path):
         finally:
             if server.proc is not None and server.proc.poll() is None:
                 server.kill()
+
+
+@needs_rclone
+async def test_the_daemon_copies_after_each_time_point(tmp_path):
+    """Served with an offload setting, the daemon sends each time point's frames without being
+    asked (the scheduled pass is an hour away here), and counts them in /metrics."""
+    config = tmp_path / "rclone.conf"
+    config.write_text("")
+    store = tmp_path / "lab-store"
+    store.mkdir()
+    port = free_port()
+    server = SftpServer(store, port, config)
+    server.start()
+    try:
+        opts = OffloadOptions(remote=remote_spec(port, config), rclone=RCLONE, rclone_config=str(config),
+                              interval_s=3600.0, timeout_s=60)
+        async with served(tmp_path / "data", offload=opts) as srv:
+            async with srv.session.post(srv.u("/api/v1/timelapses"), headers=srv.auth,
+                                        json={**QUICK_PLAN, "count": 2}) as r:
+                tl = (await r.json())["id"]
+            assert await wait_for(lambda: srv.station.active() is None, timeout_s=90)
+            index = srv.station.index
+            assert await wait_for(lambda: not index.frames_to_copy(), timeout_s=60)
+            for f in index.frames(tl):
+                remote_file = store / "frames" / f["path"]
+                assert hashlib.md5(remote_file.read_bytes()).hexdigest() == index.frame_copy(f["id"])["md5"]  # noqa: S324
+            async with srv.session.get(srv.u("/metrics"), headers=srv.auth) as r:
+                text = await r.text()
+            assert "phasewatch_offload_frames_copied_total 4.0" in text
+    finally:
+        server.kill()
+
+
+def test_offload_file_is_loaded_strictly(tmp_path):
+    from daemon.storage.offload import load_offload
+    from drivers.options import ConfigError
+
+    good = tmp_path / "offload.toml"
+    good.write_text('[offload]\nremote = "labstore:incubator-2-left"\ninterval_s = 300\n')
+    opts = load_offload(good)
+    assert opts.remote == "labstore:incubator-2-left" and opts.interval_s == 300.0
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[offload]\nremote = "labstore:x"\nintervall_s = 300\n')
+    with pytest.raises(ConfigError) as err:
+        load_offload(bad)
+    assert "bad.toml" in str(err.value) and "intervall_s" in str(err.value) and "interval_s" in str(err.value)
+    with pytest.raises(ConfigError, match="missing section"):
+        (tmp_path / "empty.toml").write_text("")
+        load_offload(tmp_path / "empty.toml")

@@ -5,10 +5,12 @@ from __future__ import annotations
 import argparse
 import logging
 import math
+from pathlib import Path
 
 from daemon.commands.common import add_profile_options
 from drivers.options import ConfigError
 from daemon.profile import load_profile
+from daemon.storage.offload import load_offload
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.storage.verify import DEFAULT_RATE_MB_S
 
@@ -33,6 +35,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--verify-rate-mb", type=float, default=DEFAULT_RATE_MB_S, metavar="MB_PER_S",
                    help=f"highest read rate of the background check of every stored frame "
                         f"(default {DEFAULT_RATE_MB_S:g} MB/s; 0 turns it off)")
+    p.add_argument("--offload", type=Path, metavar="TOML",
+                   help="copy frames to lab storage with rclone, as set in the file's [offload] section "
+                        "(remote, interval_s, prune_below_free_mb, ...); see daemon/storage/offload.py")
     p.add_argument("--log-level", choices=("debug", "info", "warning", "error"), default="info", help="log detail")
     p.set_defaults(func=run)
 
@@ -57,5 +62,6 @@ async def run(args: argparse.Namespace) -> int:
         profile=profile, data_dir=args.data, host=args.host, port=args.port, sim_speed=args.sim_speed,
         max_fps=args.max_fps, discovery=not args.no_discovery, reserve_mb=args.reserve_mb,
         verify=args.verify, verify_rate_mb_s=args.verify_rate_mb,
+        offload=load_offload(args.offload) if args.offload is not None else None,
     )
     return await serve(cfg)

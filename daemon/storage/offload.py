@@ -66,6 +66,26 @@ class OffloadPass:
     rclone_error: str | None = None  # one line, when rclone failed (server gone, say)
 
 
+def load_offload(path: Path) -> OffloadOptions:
+    """The ``[offload]`` section of a TOML file, strictly (unknown sections and options are errors)."""
+    import tomllib
+
+    from drivers.options import ConfigError, load_section
+
+    try:
+        raw = tomllib.loads(path.read_text())
+    except OSError as exc:
+        raise ConfigError(path, "", None, f"cannot read: {exc.strerror}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, "", None, f"not valid TOML: {exc}") from None
+    for key, value in raw.items():
+        if key != "offload" or not isinstance(value, dict):
+            raise ConfigError(path, key, None, "unknown section; allowed: [offload]")
+    if "offload" not in raw:
+        raise ConfigError(path, "offload", None, "missing section [offload]")
+    return load_section(OffloadOptions, raw["offload"], file=path, section="offload")
+
+
 class RcloneError(RuntimeError):
     pass
 
