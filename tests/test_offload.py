@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from daemon.errors import Damaged
 from daemon.storage.offload import Offloader, OffloadOptions
 from daemon.storage.verify import VerifyProgress, verify_all
 from tests.web_support import LOOPBACK, QUICK_PLAN, served, wait_for
@@ -143,6 +144,11 @@ async def test_copy_verify_and_prune_with_a_server_that_vanishes(tmp_path):
             for fid in index.pruned_frame_ids():
                 copy = index.frame_copy(fid)
                 assert copy["remote"] == opts.remote and copy["local_pruned_s"] is not None
+                # Asked for by the page or the API, a pruned frame points to its copy and stays "ok".
+                with pytest.raises(Damaged, match="moved to lab storage") as moved:
+                    srv.station.archive.frame_path(tl, fid)
+                assert opts.remote in str(moved.value)
+                assert index.frame_status(fid) == "ok"
         finally:
             if server.proc is not None and server.proc.poll() is None:
                 server.kill()

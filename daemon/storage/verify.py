@@ -134,6 +134,9 @@ def mark_frame(index: Index, row: dict[str, object], status: str, t_s: float, fo
     current = index.frame_status(int(row["id"]))  # type: ignore[arg-type]
     if current == status:
         return
+    copy = index.frame_copy(int(row["id"]))  # type: ignore[arg-type]
+    if status == FrameState.MISSING and copy is not None and copy["local_pruned_s"] is not None:
+        return  # removed on purpose after its copy on lab storage was verified: not lost
     index.set_frame_status(int(row["id"]), status)  # type: ignore[arg-type]
     index.add_alert(
         int(row["timelapse_id"]), t_s=t_s, level="error", kind="storage",  # type: ignore[arg-type]
