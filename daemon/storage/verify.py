@@ -88,6 +88,11 @@ async def verify_all(
             progress.checked += 1  # already marked; nothing new to find
             continue
         status = await asyncio.to_thread(check_file, data_dir / row["path"], row["bytes"], row["crc32"])
+        if status == FrameState.MISSING:
+            copy = await asyncio.to_thread(index.frame_copy, row["id"])
+            if copy is not None and copy["local_pruned_s"] is not None:
+                progress.checked += 1  # removed during this check, after its copy was verified
+                continue
         progress.bytes_read += row["bytes"] if status == FrameState.OK else 0
         progress.checked += 1
         if status != FrameState.OK:
