@@ -232,6 +232,12 @@ class Archive:
             if status != FrameState.OK and not self.index.read_only:
                 mark_frame(self.index, row, status, time.time(), "a download")
         if status == FrameState.MISSING:
+            copy = self.index.frame_copy(int(row["id"]))
+            if copy is not None and copy["local_pruned_s"] is not None:
+                raise Damaged(
+                    f"frame {row['id']} was moved to lab storage: {copy['remote']}/{row['path']} "
+                    f"(MD5 {copy['md5']}); its local file was removed to make room", status=status,
+                )
             raise Damaged(f"frame {row['id']} is indexed but its file {row['path']} is missing", status=status)
         if status != FrameState.OK:
             raise Damaged(

@@ -43,6 +43,19 @@ class Metrics:
         self.last_focus_score = Gauge(
             "phasewatch_focus_score_last", "Focus score of the latest time-lapse frame or autofocus", registry=r
         )
+        self.time_points_missed = Counter(
+            "phasewatch_time_points_missed", "Time points recorded as missed (their slot closed before they could run)",
+            registry=r,
+        )
+        self.offload_copied = Counter(
+            "phasewatch_offload_frames_copied", "Frames copied to lab storage with their checksum read back", registry=r
+        )
+        self.offload_pruned = Counter(
+            "phasewatch_offload_local_files_removed", "Local files of copied frames removed for space", registry=r
+        )
+        self.offload_failures = Counter(
+            "phasewatch_offload_failures", "Copy passes to lab storage that failed (store unreachable, say)", registry=r
+        )
         self.last_confluence = Gauge(
             "phasewatch_confluence_last", "Confluence (0..1) of the latest analysed time-lapse frame", registry=r
         )
@@ -76,6 +89,8 @@ class _StationCollector(Collector):
         yield frames
         yield _gauge("phasewatch_disk_free_bytes", "Free space in the data folder's file system",
                      lambda: shutil.disk_usage(st.data_dir).free)
+        yield _gauge("phasewatch_disk_size_bytes", "Size of the data folder's file system",
+                     lambda: shutil.disk_usage(st.data_dir).total)
         yield _gauge("phasewatch_live_viewers", "Clients watching the live view", lambda: st.live.viewers)
         yield _gauge("phasewatch_live_fps", "Live view frames per second (last 3 s)", lambda: st.live.fps)
         progress = GaugeMetricFamily(
@@ -94,6 +109,23 @@ class _StationCollector(Collector):
                 done.add_metric([tl, status], n)
         yield progress
         yield done
+        # One sample per well of the latest time-lapse's plan: the label set is bounded by the
+        # vessel (at most the wells of one plate), never by time or by frame.
+        confluence = GaugeMetricFamily(
+            "phasewatch_well_confluence_ratio",
+            "Confluence (0..1) of each well at the latest time point where it could be read",
+            labels=["timelapse_id", "well"],
+        )
+        threshold = GaugeMetricFamily(
+            "phasewatch_well_passaging_confluence_ratio",
+            "Confluence (0..1) at which the culture watch calls for passaging each well",
+            labels=["timelapse_id", "well"],
+        )
+        for w in st.well_confluence_summary():
+            confluence.add_metric([str(w.timelapse_id), w.well], w.confluence)
+            threshold.add_metric([str(w.timelapse_id), w.well], w.threshold)
+        yield confluence
+        yield threshold
         check = st.storage_check
         yield _gauge("phasewatch_storage_check_ratio",
                      "Share of stored frames the background check has read since start", lambda: check.ratio)

@@ -40,6 +40,7 @@ from daemon.archive import (
     Archive, AlertsQuery, ExportFile, ExportRequest, ExportsMade, FramePage, FramesQuery, MovieQuery, PreviewQuery,
 )
 from daemon.errors import Busy, NoSpace, NotFound
+from daemon.culture.readings import timelapse_readings
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, autofocus_as_asked
 from daemon.illumination.acquire import DarkRequest, FlatRequest, Taken, check_flat, take_dark, take_flat
 from daemon.illumination.calibration import CalibrationStore
@@ -55,6 +56,7 @@ from daemon.results import (
     position_json,
 )
 from daemon.storage.index import Index
+from daemon.storage.offload import Offloader, OffloadOptions
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.storage.verify import DEFAULT_RATE_MB_S, VerifyProgress, verify_all
 from daemon.timelapse import timing
@@ -88,6 +90,16 @@ ACTIONS = {"pause": TimelapseState.PAUSED, "resume": TimelapseState.RUNNING, "ab
 NO_SPACE_ERRNOS = (errno.ENOSPC, errno.EDQUOT)
 
 
+@dataclasses.dataclass(frozen=True)
+class WellConfluence:
+    """A well's latest confluence reading and the confluence at which it is to be passaged."""
+
+    timelapse_id: int
+    well: str
+    confluence: float  # fraction 0..1
+    threshold: float  # fraction 0..1
+
+
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class ControlRequest:
     """Pause, resume or abort a time-lapse: no options, so any given is refused as unknown."""
@@ -105,6 +117,7 @@ class Station:
         max_fps: float,
         reserve_mb: float = DEFAULT_RESERVE_MB,
         verify_rate_mb_s: float = DEFAULT_RATE_MB_S,
+        offload: OffloadOptions | None = None,
     ) -> None:
         self.profile = profile
         self.scope = scope
@@ -123,11 +136,15 @@ class Station:
         self._task: asyncio.Task[str] | None = None
         self._progress: dict[str, Any] | None = None
         self._af_seen: set[tuple[int, int, str]] = set()
+        self._wells_cache: tuple[tuple[int, int, int], list[WellConfluence]] | None = None
         self.last_focus: dict[str, Any] | None = None
         self.started_monotonic = time.monotonic()
         self.verify_rate_mb_s = verify_rate_mb_s
         self.storage_check = VerifyProgress()
         self._verify_task: asyncio.Task[VerifyProgress] | None = None
+        self.offloader = Offloader(data_dir, index, offload) if offload is not None else None
+        self._offload_due = asyncio.Event()
+        self._offload_task: asyncio.Task[None] | None = None
         metrics.attach(self)
 
     # -- life cycle --------------------------------------------------------------------
@@ -139,6 +156,8 @@ class Station:
 
         if self.verify_rate_mb_s > 0:
             self._verify_task = asyncio.create_task(self._verify(), name="background frame check")
+        if self.offloader is not None:
+            self._offload_task = asyncio.create_task(self._offload_loop(), name="copy to lab storage")
         row = await asyncio.to_thread(pick_unfinished, self.index)
         if row is None:
             return
@@ -163,8 +182,37 @@ class Station:
             self.storage_check.error = str(exc)
             return self.storage_check
 
+    async def _offload_loop(self) -> None:
+        """Copy passes on the schedule and after each time point, in their own task: rclone runs
+        as a child process, so a slow or absent lab store never delays acquisition."""
+        assert self.offloader is not None
+        interval_s = self.offloader.options.interval_s
+        while True:
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(self._offload_due.wait(), interval_s)
+            self._offload_due.clear()
+            try:
+                done = await self.offloader.run_once()
+            except asyncio.CancelledError:
+                raise
+            except Exception:  # noqa: BLE001 - logged; the next pass tries again
+                log.exception("copy to lab storage failed")
+                self.metrics.offload_failures.inc()
+                continue
+            self.metrics.offload_copied.inc(done.copied)
+            self.metrics.offload_pruned.inc(done.pruned)
+            if done.rclone_error is not None:
+                self.metrics.offload_failures.inc()
+            if done.copied or done.pruned or done.rclone_error:
+                log.info("copy to lab storage: %d of %d frames verified, %d local files removed%s", done.copied,
+                         done.candidates, done.pruned, f"; {done.rclone_error}" if done.rclone_error else "")
+
     async def stop(self) -> None:
         """Leave the time-lapse unfinished (resumed on the next start) and stop live view."""
+        if self._offload_task is not None and not self._offload_task.done():
+            self._offload_task.cancel()
+            with contextlib.suppress(asyncio.CancelledError):
+                await self._offload_task
         if self._verify_task is not None and not self._verify_task.done():
             self._verify_task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
@@ -225,6 +273,10 @@ class Station:
                 m.autofocus_runs.labels("timelapse").inc()
                 if not found:
                     m.autofocus_failures.labels("timelapse").inc()
+        elif kind == "time_point" and event.get("status") == TimePointState.MISSED:
+            m.time_points_missed.inc()
+        elif kind == "time_point" and event.get("status") in (TimePointState.DONE, TimePointState.PARTIAL):
+            self._offload_due.set()  # the new frames go to lab storage now, not at the next scheduled pass
         elif kind == "alert":
             level = event.get("level", "warning")
             m.alerts.labels(level if level in ("info", "warning", "error") else "warning").inc()
@@ -485,6 +537,26 @@ class Station:
         counts = {st: n for st, n in self.index.time_point_counts(s.id).items() if st != TimePointState.RUNNING}
         over = sum(counts.values())
         return {"id": s.id, "state": s.state, "ratio": over / s.count if s.count else 0.0, "time_points": counts}
+
+    def well_confluence_summary(self) -> list[WellConfluence]:
+        """For metrics: each well's confluence at the latest time point of the station's latest
+        time-lapse that gave it a reading, with its passaging threshold (blocking: reads the index).
+        Recomputed only when a time point has ended since the last call."""
+        s = self.scheduler
+        if s is None:
+            return []
+        points = self.index.time_points(s.id)
+        ended = tuple(p["tp"] for p in points if p["status"] in (TimePointState.DONE, TimePointState.PARTIAL))
+        key = (s.id, ended[-1] if ended else -1, len(ended))
+        if self._wells_cache is not None and self._wells_cache[0] == key:
+            return self._wells_cache[1]
+        latest: dict[str, WellConfluence] = {}
+        for r in timelapse_readings(self.index, s.id):  # ordered by well, then time point
+            if r.confluence is not None and r.tp in ended:
+                latest[r.well] = WellConfluence(s.id, r.well, r.confluence, s.watch.rules_for(r.well).confluence_threshold)
+        out = list(latest.values())
+        self._wells_cache = (key, out)
+        return out
 
     def _progress_of(self, s: Scheduler) -> dict[str, Any]:
         now = self.scope.clock.now()

@@ -26,6 +26,7 @@ from daemon.web.app import ServeConfig, create_app, serve
 from daemon.web.auth import token_path
 from daemon.web.keys import STATION
 from daemon.station import Station
+from daemon.storage.offload import OffloadOptions
 from tests.helpers import sim_profile
 
 LOOPBACK = "127.0.0.1"
@@ -77,12 +78,13 @@ class Served:
 
 @contextlib.asynccontextmanager
 async def served(
-    data_dir: Path, profile: Profile | None = None, *, speed: float = 1000.0, max_fps: float = 20.0
+    data_dir: Path, profile: Profile | None = None, *, speed: float = 1000.0, max_fps: float = 20.0,
+    offload: OffloadOptions | None = None,
 ) -> AsyncIterator[Served]:
     """The daemon's application on a loopback port, and a client session (no token by default)."""
     cfg = ServeConfig(
         profile=profile or web_profile(), data_dir=data_dir, host=LOOPBACK, port=0, sim_speed=speed,
-        max_fps=max_fps, discovery=False,
+        max_fps=max_fps, discovery=False, offload=offload,
     )
     server = TestServer(create_app(cfg), host=LOOPBACK, port=0, shutdown_timeout=2.0)
     await server.start_server()

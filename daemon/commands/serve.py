@@ -11,6 +11,7 @@ from daemon.commands.common import add_profile_options
 from drivers.options import ConfigError
 from daemon.mqtt.options import mqtt_options
 from daemon.profile import load_profile
+from daemon.storage.offload import load_offload
 from daemon.storage.space import DEFAULT_RESERVE_MB
 from daemon.storage.verify import DEFAULT_RATE_MB_S
 
@@ -40,6 +41,9 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "or mqtts://host[:port] (read-only: nothing received moves the scope; docs/MQTT.md)")
     p.add_argument("--site", type=Path, metavar="FILE", default=None,
                    help="site configuration file (TOML) with the lab's [mqtt] broker, credentials and TLS files")
+    p.add_argument("--offload", type=Path, metavar="TOML",
+                   help="copy frames to lab storage with rclone, as set in the file's [offload] section "
+                        "(remote, interval_s, prune_below_free_mb, ...); see daemon/storage/offload.py")
     p.add_argument("--log-level", choices=("debug", "info", "warning", "error"), default="info", help="log detail")
     p.set_defaults(func=run)
 
@@ -68,5 +72,6 @@ async def run(args: argparse.Namespace) -> int:
         max_fps=args.max_fps, discovery=not args.no_discovery, reserve_mb=args.reserve_mb,
         verify=args.verify, verify_rate_mb_s=args.verify_rate_mb,
         mqtt=mqtt if mqtt.enabled else None,
+        offload=load_offload(args.offload) if args.offload is not None else None,
     )
     return await serve(cfg)

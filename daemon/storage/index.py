@@ -132,6 +132,15 @@ CREATE TABLE IF NOT EXISTS frames (
     UNIQUE (timelapse_id, tp, key, z_index, kind)
 );
 CREATE INDEX IF NOT EXISTS frames_by_position ON frames (timelapse_id, key, tp);
+-- Where a frame lives besides the data folder: a copy on lab storage whose checksum was read
+-- back and matched, and whether the local file has since been removed to make room.
+CREATE TABLE IF NOT EXISTS frame_copies (
+    frame_id INTEGER PRIMARY KEY REFERENCES frames(id),
+    remote TEXT NOT NULL,
+    md5 TEXT NOT NULL,
+    verified_s REAL NOT NULL,
+    local_pruned_s REAL
+);
 CREATE TABLE IF NOT EXISTS alerts (
     id INTEGER PRIMARY KEY,
     timelapse_id INTEGER REFERENCES timelapses(id),
@@ -565,6 +574,40 @@ class Index:
             c.execute("UPDATE frames SET status = ? WHERE id = ?", (status, frame_id))
 
     # -- alerts --------------------------------------------------------------------
+
+    # -- copies on lab storage --------------------------------------------------------
+
+    def frames_to_copy(self, limit: int = 10000) -> list[dict[str, Any]]:
+        """Frames in good order with no verified copy yet, oldest first."""
+        return self._all(
+            "SELECT f.* FROM frames f LEFT JOIN frame_copies c ON c.frame_id = f.id"
+            " WHERE c.frame_id IS NULL AND f.status = ? ORDER BY f.id LIMIT ?", (FrameState.OK, limit),
+        )
+
+    def record_copy(self, frame_id: int, *, remote: str, md5: str, t_s: float) -> None:
+        with self._tx() as c:
+            c.execute(
+                "INSERT OR REPLACE INTO frame_copies (frame_id, remote, md5, verified_s) VALUES (?, ?, ?, ?)",
+                (frame_id, remote, md5, t_s),
+            )
+
+    def frames_prunable(self, limit: int = 1000) -> list[dict[str, Any]]:
+        """Frames with a verified copy whose local file is still here, oldest first."""
+        return self._all(
+            "SELECT f.*, c.remote, c.md5 FROM frames f JOIN frame_copies c ON c.frame_id = f.id"
+            " WHERE c.local_pruned_s IS NULL ORDER BY f.t_s, f.id LIMIT ?", (limit,),
+        )
+
+    def record_pruned(self, frame_id: int, t_s: float) -> None:
+        with self._tx() as c:
+            c.execute("UPDATE frame_copies SET local_pruned_s = ? WHERE frame_id = ?", (t_s, frame_id))
+
+    def frame_copy(self, frame_id: int) -> dict[str, Any] | None:
+        """Where a frame's copy lives (remote, md5, when verified, when the local file went), or None."""
+        return self._one("SELECT * FROM frame_copies WHERE frame_id = ?", (frame_id,))
+
+    def pruned_frame_ids(self) -> set[int]:
+        return {r["frame_id"] for r in self._all("SELECT frame_id FROM frame_copies WHERE local_pruned_s IS NOT NULL")}
 
     def add_alert(self, tl_id: int | None, *, t_s: float, level: str, kind: str, message: str) -> dict[str, Any]:
         with self._tx() as c:

@@ -77,6 +77,9 @@ async def verify_all(
 ) -> VerifyProgress:
     """Read every indexed frame once (files off the event loop), pacing reads to ``rate_mb_s``."""
     rows = await asyncio.to_thread(index.frames)
+    # A frame whose local file was removed after its copy on lab storage was verified is not missing.
+    pruned = await asyncio.to_thread(index.pruned_frame_ids)
+    rows = [r for r in rows if r["id"] not in pruned]
     progress.total, progress.started_s = len(rows), now()
     budget_s_per_byte = 1.0 / (rate_mb_s * 1e6)
     t_start = time.monotonic()
@@ -85,6 +88,11 @@ async def verify_all(
             progress.checked += 1  # already marked; nothing new to find
             continue
         status = await asyncio.to_thread(check_file, data_dir / row["path"], row["bytes"], row["crc32"])
+        if status == FrameState.MISSING:
+            copy = await asyncio.to_thread(index.frame_copy, row["id"])
+            if copy is not None and copy["local_pruned_s"] is not None:
+                progress.checked += 1  # removed during this check, after its copy was verified
+                continue
         progress.bytes_read += row["bytes"] if status == FrameState.OK else 0
         progress.checked += 1
         if status != FrameState.OK:
@@ -131,6 +139,9 @@ def mark_frame(index: Index, row: dict[str, object], status: str, t_s: float, fo
     current = index.frame_status(int(row["id"]))  # type: ignore[arg-type]
     if current == status:
         return
+    copy = index.frame_copy(int(row["id"]))  # type: ignore[arg-type]
+    if status == FrameState.MISSING and copy is not None and copy["local_pruned_s"] is not None:
+        return  # removed on purpose after its copy on lab storage was verified: not lost
     index.set_frame_status(int(row["id"]), status)  # type: ignore[arg-type]
     index.add_alert(
         int(row["timelapse_id"]), t_s=t_s, level="error", kind="storage",  # type: ignore[arg-type]

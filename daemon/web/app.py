@@ -31,6 +31,7 @@ from daemon.web import API_PREFIX, api, events
 from daemon.web.auth import MAX_FAILURES, MAX_TOTAL_FAILURES, Authenticator, FailureLimiter, load_or_create_token, token_path
 from daemon.web.keys import AUTH, CONFIG, METRICS, MQTT, SOCKETS, STATION
 from daemon.metrics import Metrics
+from daemon.storage.offload import OffloadOptions
 from daemon.web.notify import Notifier
 from daemon.web.openapi import document
 from daemon.station import Station
@@ -62,6 +63,7 @@ class ServeConfig:
     max_token_failures: int = MAX_FAILURES  # wrong tokens per client per minute before 429
     max_token_failures_total: int = MAX_TOTAL_FAILURES  # the same from all clients together
     mqtt: MqttOptions | None = None  # report to the lab's broker (see docs/MQTT.md)
+    offload: OffloadOptions | None = None  # copying frames to lab storage; None: off
 
 
 # -- pages and small endpoints ---------------------------------------------------------
@@ -155,7 +157,7 @@ async def station_ctx(app: web.Application) -> AsyncIterator[None]:
                 station = Station(
                     profile=cfg.profile, scope=scope, data_dir=cfg.data_dir, index=index,
                     metrics=app[METRICS], max_fps=cfg.max_fps, reserve_mb=cfg.reserve_mb,
-                    verify_rate_mb_s=cfg.verify_rate_mb_s,
+                    verify_rate_mb_s=cfg.verify_rate_mb_s, offload=cfg.offload,
                 )
                 app[STATION] = station
                 await station.start()
