@@ -262,14 +262,15 @@ class Archive:
 
     def series(self, tl_id: int) -> dict[str, Any]:
         """Focus score and confluence over time per position and well, with growth fits."""
-        from daemon.timelapse.plan import Plan
+        from daemon.storage.export import condition_of, plan_of
 
         row = self.timelapse(tl_id)
         out = {"id": tl_id, "t0_s": row["t0_s"], **plot_series(self.index, tl_id)}
-        plan = Plan.from_dict(json.loads(row["plan_json"])["plan"], file=f"time-lapse {tl_id}")
+        plan = plan_of(row)
         for well, w in out["wells"].items():
-            w["condition"] = plan.condition_of(well).label
-        out["conditions"] = {w: {"label": c.label, "notes": c.notes} for w, c in plan.conditions.items()}
+            w["condition"] = condition_of(plan, well)[0]
+        conditions = plan.conditions.items() if plan is not None else ()
+        out["conditions"] = {w: {"label": c.label, "notes": c.notes} for w, c in conditions}
         return out
 
     def well_readings(self, tl_id: int, well: str) -> list[WellReading]:

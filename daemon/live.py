@@ -311,7 +311,7 @@ class LiveView:
         if self.scope.lock.locked():
             return
         try:
-            async with self.scope.claim(LIVE_HOLDER):
+            async with self.scope.claim(LIVE_HOLDER, timed=False):
                 await self.scope.motion.set_lamp(False)
         except HardwareError as exc:
             log.warning("live view: could not switch the LED off: %s", exc)

@@ -89,14 +89,23 @@ def export_csv(index: Index, tl_id: int, out_dir: Path) -> tuple[Path, Path]:
 CONDITION_COLUMNS = ("condition", "condition_notes")
 
 
-def plan_of(tl: dict[str, Any]) -> Plan:
-    """The plan a time-lapse was started with, as its index row keeps it."""
-    return Plan.from_dict(json.loads(tl["plan_json"])["plan"], file=f"time-lapse {tl['id']}")
+def plan_of(tl: dict[str, Any]) -> Plan | None:
+    """The plan a time-lapse was started with, as its index row keeps it; None for one
+    rebuilt from its frames alone (its plan record was lost), which has no conditions."""
+    spec = json.loads(tl["plan_json"]).get("plan")
+    return None if spec is None else Plan.from_dict(spec, file=f"time-lapse {tl['id']}")
 
 
-def _condition_cells(plan: Plan, well: str) -> list[str]:
+def condition_of(plan: Plan | None, well: str) -> tuple[str, str]:
+    """A well's condition label and notes ("" where none is known)."""
+    if plan is None:
+        return "", ""
     c = plan.condition_of(well)
-    return [c.label, c.notes]
+    return c.label, c.notes
+
+
+def _condition_cells(plan: Plan | None, well: str) -> list[str]:
+    return list(condition_of(plan, well))
 
 
 @dataclasses.dataclass(frozen=True)
@@ -108,14 +117,14 @@ class StackExport:
     skipped_time_points: int
 
 
-def _meta_of(row: dict[str, Any], tl: dict[str, Any], plan: Plan) -> FrameMeta:
+def _meta_of(row: dict[str, Any], tl: dict[str, Any], plan: Plan | None) -> FrameMeta:
     return FrameMeta(
         timelapse_id=row["timelapse_id"], timelapse_name=tl["name"], tp=row["tp"], key=row["key"],
         well=row["well"], site=row["site"], z_index=row["z_index"], kind=row["kind"], t_s=row["t_s"],
         delta_t_s=row["delta_t_s"], x_um=row["x_um"], y_um=row["y_um"], z_um=row["z_um"],
         exposure_ms=row["exposure_ms"], gain_db=row["gain_db"], bit_depth=row["bit_depth"],
-        pixel_size_um=row["pixel_size_um"], condition=plan.condition_of(row["well"]).label,
-        condition_notes=plan.condition_of(row["well"]).notes,
+        pixel_size_um=row["pixel_size_um"], condition=condition_of(plan, row["well"])[0],
+        condition_notes=condition_of(plan, row["well"])[1],
     )
 
 

@@ -52,14 +52,17 @@ if TYPE_CHECKING:
 AUTOFOCUS_POLICIES = ("track", "first", "off")
 SAVE_CHOICES = ("corrected", "raw", "both")
 
-# Frames per autofocus run: the targets in docs/TARGETS.md (cold autofocus <= 15 frames;
-# tracking <= 6, a margin over its median of 4), used as the budget an estimate plans for.
+# Frames per autofocus run. A cold search is planned at its budget (docs/TARGETS.md: <= 15);
+# a tracked position at what the tracker takes when its slope check holds (two frames on
+# the flanks, one to confirm: the median of the focus benchmark), so that a steady time
+# point's estimate is what a run of them takes.
 COLD_AUTOFOCUS_FRAMES = 15
-TRACK_AUTOFOCUS_FRAMES = 6
-# Range a cold search covers (+-150 um start error, docs/TARGETS.md) and the window a
-# tracking search covers (drift up to 20 um each way).
+TRACK_AUTOFOCUS_FRAMES = 3
+# Range a cold search covers (+-150 um start error, docs/TARGETS.md).
 COLD_SEARCH_RANGE_UM = 300.0
-TRACK_SEARCH_RANGE_UM = 40.0
+# What the tracker's slope check spans: a frame about one peak width (~5 um at 10x/0.25)
+# either side of the predicted plane.
+TRACK_CHECK_SPAN_UM = 10.0
 # Software time per saved frame: the target (docs/TARGETS.md) for correction, metrics, TIFF write and index.
 SOFTWARE_S_PER_SAVED_FRAME = 0.030
 # Focus score on an autofocus frame (a metric on a full frame, no write).
@@ -531,7 +534,10 @@ def _breakdown(profile: Profile, plan: Plan, travel_um: float, cold: bool) -> di
         if cold:
             out["focus_s"] = _autofocus_s(profile, COLD_AUTOFOCUS_FRAMES, COLD_SEARCH_RANGE_UM)
         elif plan.autofocus == "track":
-            out["focus_s"] = _autofocus_s(profile, TRACK_AUTOFOCUS_FRAMES, TRACK_SEARCH_RANGE_UM)
+            out["focus_s"] = _autofocus_s(profile, TRACK_AUTOFOCUS_FRAMES, TRACK_CHECK_SPAN_UM)
+        if out["focus_s"]:
+            # A search ends on the plane it found, approached from below: nothing more to approach.
+            out["z_approach_s"] = 0.0
     return out
 
 
