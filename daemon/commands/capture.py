@@ -1,4 +1,4 @@
-"""``phasewatch snap``: capture one frame and save it as a lossless (OME-)TIFF."""
+"""``phasewatch capture``: capture one frame and save it as a lossless (OME-)TIFF."""
 
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ DEMO_WELL = "B3"
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("snap", help="capture one frame and save it as a lossless TIFF")
+    p = sub.add_parser("capture", help="capture one frame and save it as a lossless TIFF")
     add_profile_options(p)
     p.add_argument("--output", "-o", type=Path, required=True, help="file to write (.tif)")
     add_position_options(p, verb="take the frame", z=True)
@@ -77,7 +77,7 @@ async def run(args: argparse.Namespace) -> int:
         args.well = DEMO_WELL
     target = move_from_args(profile, args, POSITION_FIELDS + ("z_um",))
     scope = build_scope(profile, sim_speed=args.sim_speed)
-    async with scope, scope.claim("snap (command line)"):
+    async with scope, scope.claim("capture (command line)"):
         if target is not None:
             await apply_move(scope, target)
         if args.autofocus or (profile.is_simulated and args.z_um is None):
