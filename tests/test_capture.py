@@ -57,3 +57,17 @@ def test_capture_refuses_move_beyond_soft_limit(small_profile: Path, tmp_path: P
     err = capsys.readouterr().err
     assert "z_safe_max_um = 3000.0" in err and "nothing was sent" in err
     assert not (tmp_path / "f.tif").exists()
+
+
+def test_capture_without_a_position_goes_to_the_demo_well_and_says_so(
+    small_profile: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The same line as `phasewatch focus` prints in the same case.
+    out = tmp_path / "frame.tif"
+    rc = main(["capture", "--profile", str(small_profile), "--sim-speed", "500", "--output", str(out),
+               "--data", str(tmp_path / "data")])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert text.splitlines()[0] == "moved to well B3 (the demo well: no position given)"
+    assert "well B3; true coverage" in text
+    assert out.exists()
