@@ -270,7 +270,7 @@ class LiveView:
         if scope.last_frame is None or scope.frames_captured == self._seen_captures:
             return False
         self._seen_captures = scope.frames_captured
-        await self._publish(scope.last_frame, scope.holder or "snapshot")
+        await self._publish(scope.last_frame, scope.holder or "single frame")
         return True
 
     async def _loop(self) -> None:

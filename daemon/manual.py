@@ -1,6 +1,6 @@
 """Manual control: moving the stage and focus, and taking a frame, as a person asks.
 
-The command line (``phasewatch focus``, ``snap``, ``calibrate flat``, ``correct``) and
+The command line (``phasewatch focus``, ``capture``, ``calibrate flat``, ``correct``) and
 the web API (``POST /api/v1/stage/move``) take the same :class:`MoveRequest`, resolve it
 through the same vessel-to-stage map and move the same way; soft limits are checked by
 the motion driver before anything is sent, whoever asked.

@@ -2,7 +2,9 @@
 mount, sim).
 
 Loading is strict (see :mod:`drivers.options`): every error names the file, the section and
-the option and says what is allowed. ``[camera]`` and ``[stage]`` hold the options every
+the option and says what is allowed. Every problem in the file is found in one pass (a
+:class:`~drivers.options.ConfigErrors` carries them all, its message the first one's), and
+:func:`profile_warnings` lists values that are allowed but implausible. ``[camera]`` and ``[stage]`` hold the options every
 driver shares (:mod:`drivers.sections`) plus the chosen driver's own options (declared
 next to the driver, found through :mod:`drivers.registry`); an option of another driver
 is an error that says whose it is. ``[camera_mount]`` (how the camera sits against the
@@ -19,7 +21,15 @@ from pathlib import Path
 from typing import Any, Literal
 
 from daemon.live import DEFAULT_MAX_VIEWERS, DEFAULT_STALL_S
-from drivers.options import ConfigError, load_section, option, option_names, suggest
+from drivers.options import (
+    ConfigError,
+    load_section,
+    option,
+    option_names,
+    plausibility_warnings,
+    raise_all,
+    suggest,
+)
 from drivers.registry import (
     CameraDriver,
     StageDriver,
@@ -146,6 +156,7 @@ def _load_driver_section(
         raise ConfigError(path, kind, "driver", f"the {name} driver cannot be loaded here ({exc})") from None
     common = option_names(_DRIVER_SECTIONS[kind])
     own = option_names(spec.options)
+    problems: list[ConfigError] = []
     for key, value in table.items():
         if key in common or key in own:
             continue
@@ -153,18 +164,28 @@ def _load_driver_section(
         owners = [o for o in option_owners(kind, key) if o != name]
         if owners:
             whose = " and ".join(repr(o) for o in owners)
-            raise ConfigError(
+            problems.append(ConfigError(
                 path, kind, key,
                 f"is an option of the {whose} {kind} driver{'s' if len(owners) > 1 else ''}, not of {name!r}; "
                 f"the {name} driver {takes} beside the common [{kind}] options",
-            )
+            ))
+            continue
         what = "sub-section" if isinstance(value, dict) else "option"
-        raise ConfigError(
+        problems.append(ConfigError(
             path, kind, key,
             f"unknown {what}{suggest(key, common + own)}; allowed here: {', '.join(sorted(common + own))}",
-        )
-    section = load_section(_DRIVER_SECTIONS[kind], {k: v for k, v in table.items() if k in common}, file=path, section=kind)
-    options = load_section(spec.options, {k: v for k, v in table.items() if k in own}, file=path, section=kind)
+        ))
+    section = options = None
+    try:
+        section = load_section(_DRIVER_SECTIONS[kind], {k: v for k, v in table.items() if k in common}, file=path, section=kind)
+    except ConfigError as exc:
+        problems.append(exc)
+    try:
+        options = load_section(spec.options, {k: v for k, v in table.items() if k in own}, file=path, section=kind)
+    except ConfigError as exc:
+        problems.append(exc)
+    raise_all(problems)
+    assert section is not None
     return spec, dataclasses.replace(section, options=options)
 
 
@@ -176,27 +197,54 @@ def load_profile(name_or_path: str | Path) -> Profile:
         raise ConfigError(path, "", None, f"not valid TOML: {exc}") from None
     except OSError as exc:
         raise ConfigError(path, "", None, f"cannot read: {exc.strerror}") from None
+    problems: list[ConfigError] = []
+    unusable: set[str] = set()
     for key, value in raw.items():
         if key not in SECTION_NAMES:
-            raise ConfigError(
+            problems.append(ConfigError(
                 path, key, None,
                 f"unknown section{suggest(key, SECTION_NAMES)}; allowed: {', '.join('[' + s + ']' for s in SECTION_NAMES)}",
-            )
-        if not isinstance(value, dict):
-            raise ConfigError(path, "", key, f"must be a section [{key}], not a plain value")
+            ))
+        elif not isinstance(value, dict):
+            problems.append(ConfigError(path, "", key, f"must be a section [{key}], not a plain value"))
+            unusable.add(key)
     parts: dict[str, Any] = {}
     specs: dict[str, CameraDriver | StageDriver] = {}
     for name in SECTION_NAMES[:-1]:
-        if name in _OPTIONAL_SECTIONS:
-            parts[name] = load_section(_OPTIONAL_SECTIONS[name], raw.get(name, {}), file=path, section=name)
+        if name in unusable:
             continue
-        if name not in raw:
-            raise ConfigError(path, name, None, f"missing section [{name}]")
-        if name in _DRIVER_SECTIONS:
-            specs[name], parts[name] = _load_driver_section(name, raw[name], path)  # type: ignore[arg-type]
-        else:
-            parts[name] = load_section(_PLAIN_SECTIONS[name], raw[name], file=path, section=name)
+        try:
+            if name in _OPTIONAL_SECTIONS:
+                parts[name] = load_section(_OPTIONAL_SECTIONS[name], raw.get(name, {}), file=path, section=name)
+                continue
+            if name not in raw:
+                raise ConfigError(path, name, None, f"missing section [{name}]")
+            if name in _DRIVER_SECTIONS:
+                specs[name], parts[name] = _load_driver_section(name, raw[name], path)  # type: ignore[arg-type]
+            else:
+                parts[name] = load_section(_PLAIN_SECTIONS[name], raw[name], file=path, section=name)
+        except ConfigError as exc:
+            problems.append(exc)
+    if "camera" not in specs or "stage" not in specs or "sim" in unusable:
+        # Without both drivers known, whether [sim] belongs cannot be said: report what was found.
+        raise_all(problems)
     camera, stage = specs["camera"], specs["stage"]
+    try:
+        _load_sim(raw, path, camera, stage, parts)
+    except ConfigError as exc:
+        problems.append(exc)
+    raise_all(problems)
+    profile = Profile(path=path, **parts)
+    if not math.isfinite(profile.optics.depth_of_field_um):
+        raise ConfigError(path, "optics", None, "depth of field is not finite; check NA and magnification")
+    return profile
+
+
+def _load_sim(
+    raw: dict[str, Any], path: Path, camera: CameraDriver | StageDriver, stage: CameraDriver | StageDriver,
+    parts: dict[str, Any],
+) -> None:
+    """``parts["sim"]``: the [sim] section when a simulated driver is chosen, else None."""
     if camera.simulated and not stage.simulated:
         raise ConfigError(
             path, "camera", "driver",
@@ -217,10 +265,15 @@ def load_profile(name_or_path: str | Path) -> Profile:
         raise ConfigError(path, "sim", None, "missing section [sim]: the sim drivers need it (seed, culture, sensor)")
     else:
         parts["sim"] = None
-    profile = Profile(path=path, **parts)
-    if not math.isfinite(profile.optics.depth_of_field_um):
-        raise ConfigError(path, "optics", None, "depth of field is not finite; check NA and magnification")
-    return profile
+
+
+def profile_warnings(profile: Profile) -> list[str]:
+    """One line per value that is allowed but implausible (each section's ``plausibility()``),
+    naming file, section and option."""
+    out: list[str] = []
+    for name in SECTION_NAMES:
+        out.extend(plausibility_warnings(getattr(profile, name), file=profile.path, section=name))
+    return out
 
 
 def _simulated(kind: Literal["camera", "stage"]) -> list[str]:

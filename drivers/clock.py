@@ -7,7 +7,7 @@ its reading in a file so that time keeps passing (at its speed) while the daemon
 How simulated time passes (the accelerated clock)
 --------------------------------------------------
 Simulated time runs at ``speed`` times real time. Timed work (a time point, an
-autofocus, a snapshot) holds the clock (:meth:`ScaledClock.held`): while held, simulated
+autofocus, a single capture) holds the clock (:meth:`ScaledClock.held`): while held, simulated
 time passes only by the modelled durations of what the scope does (the holder's own waits
 on the clock: exposure, settle; and the moves the simulated controller carries out, each
 waited out at speed in real time and then counted exactly, :meth:`ScaledClock.model_until`),

@@ -7,6 +7,14 @@ range or not among the allowed choices, and missing required options each raise 
 :class:`ConfigError` naming the file, the section and the option and saying what is
 allowed. Nested dataclass fields are sub-sections (``[sim.culture]``).
 
+Every problem in a section is found in one pass: when there is more than one, the error is
+a :class:`ConfigErrors` carrying them all (``phasewatch check`` lists each); its message is
+the first problem's, so a caller that reports one line still names a real mistake.
+
+Values that are allowed but unlikely (a typing slip of a factor of 1000) are not errors:
+a section may declare ``plausibility(self) -> list[Warning]`` (:class:`Implausible`), and
+:func:`plausibility_warnings` collects them, naming file, section and option.
+
 Numbers are checked for what TOML allows but no option means: ``nan`` and ``inf`` are
 refused for every number option, and whole numbers must fit in 64 bits (TOML's own
 integer range, which Python's parser does not enforce), so an absurd value is a one-line
@@ -44,6 +52,59 @@ class ConfigError(ValueError):
         if option:
             where += f" {option}"
         super().__init__(f"{self.file}: {where}: {problem}")
+
+
+class ConfigErrors(ConfigError):
+    """Several problems found in one pass. ``problems`` holds each one (file, section,
+    option); ``str()`` and the attributes are the first one's, so it reads as one ConfigError."""
+
+    def __init__(self, problems: typing.Sequence[ConfigError]) -> None:
+        flat = flatten(problems)
+        first = flat[0]
+        super().__init__(first.file, first.section, first.option, first.problem)
+        self.problems = flat
+
+
+def flatten(problems: typing.Iterable[ConfigError]) -> list[ConfigError]:
+    """Each single problem, with those inside a :class:`ConfigErrors` taken out of it."""
+    flat: list[ConfigError] = []
+    for p in problems:
+        flat.extend(p.problems if isinstance(p, ConfigErrors) else [p])
+    return flat
+
+
+def raise_all(problems: typing.Sequence[ConfigError]) -> None:
+    """Raise nothing for no problem, the problem itself for one, ConfigErrors for more."""
+    flat = flatten(problems)
+    if len(flat) == 1:
+        raise flat[0]
+    if flat:
+        raise ConfigErrors(flat)
+
+
+@dataclasses.dataclass(frozen=True)
+class Implausible:
+    """An allowed value that is probably a mistake: the option, and why (with the basis of the rule)."""
+
+    option: str
+    problem: str
+
+
+def plausibility_warnings(obj: Any, *, file: str | Path, section: str) -> list[str]:
+    """'file: [section] option: problem' for every :class:`Implausible` a section (and its
+    sub-sections) declares through a ``plausibility()`` method."""
+    out: list[str] = []
+    if obj is None or not dataclasses.is_dataclass(obj):
+        return out
+    check = getattr(obj, "plausibility", None)
+    if callable(check):
+        for w in check():
+            out.append(f"{file}: [{section}] {w.option}: {w.problem}")
+    for f in dataclasses.fields(obj):
+        value = getattr(obj, f.name, None)
+        if dataclasses.is_dataclass(value) and not isinstance(value, type):
+            out.extend(plausibility_warnings(value, file=file, section=f"{section}.{f.name}" if f.metadata.get("section") else section))
+    return out
 
 
 def option(
@@ -210,42 +271,47 @@ def load_section(cls: type[T], table: Any, *, file: str | Path, section: str) ->
         raise ConfigError(file, section, None, f"must be a table ([{section}]), got {type(table).__name__}")
     hints = typing.get_type_hints(cls)
     fields = {f.name: f for f in dataclasses.fields(cls) if f.name in option_names(cls)}
+    problems: list[ConfigError] = []
     for key in table:
         if key not in fields:
             kind = "sub-section" if isinstance(table[key], dict) else "option"
             allowed = ", ".join(sorted(fields))
-            raise ConfigError(
+            problems.append(ConfigError(
                 file, section, key, f"unknown {kind}{suggest(key, fields)}; allowed here: {allowed}"
-            )
+            ))
     kwargs: dict[str, Any] = {}
     for name, f in fields.items():
         tp = hints[name]
         sub = f"{section}.{name}" if section else name
         if dataclasses.is_dataclass(tp):
-            kwargs[name] = load_section(tp, table.get(name, {}), file=file, section=sub)  # type: ignore[arg-type]
+            try:
+                kwargs[name] = load_section(tp, table.get(name, {}), file=file, section=sub)  # type: ignore[arg-type]
+            except ConfigError as exc:
+                problems.append(exc)
             continue
         if name not in table:
             required = f.default is dataclasses.MISSING and f.default_factory is dataclasses.MISSING
             if required:
-                raise ConfigError(
+                problems.append(ConfigError(
                     file, section, name,
                     f"missing required option; set it to {_describe_allowed(f, tp)} ({f.metadata['doc']})",
-                )
+                ))
             continue
         raw = table[name]
         try:
             value = _coerce(raw, tp)
         except _OutOfRange as exc:
-            raise ConfigError(
-                file, section, name, f"{exc.problem}; set it to {_describe_allowed(f, tp)}"
-            ) from None
+            problems.append(ConfigError(file, section, name, f"{exc.problem}; set it to {_describe_allowed(f, tp)}"))
+            continue
         except TypeError:
-            raise ConfigError(
-                file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}"
-            ) from None
+            problems.append(ConfigError(file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}"))
+            continue
         if not _check_limits(value, f):
-            raise ConfigError(file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}")
+            problems.append(ConfigError(file, section, name, f"must be {_describe_allowed(f, tp)}, got {raw!r}"))
+            continue
         kwargs[name] = value
+    # Cross-checks between options need every option read; they run once the rest is sound.
+    raise_all(problems)
     try:
         obj = cls(**kwargs)
     except ConfigError:

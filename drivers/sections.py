@@ -13,7 +13,7 @@ import dataclasses
 from pathlib import Path
 from typing import Any, Protocol, TypeVar
 
-from drivers.options import given, option
+from drivers.options import Implausible, given, option
 
 T = TypeVar("T")
 
@@ -30,6 +30,22 @@ class CameraSection:
         2, doc="frames discarded after a move so no stale buffer is returned", min=0, max=16
     )
     options: Any = given(doc="the chosen driver's own options (its options dataclass); None: its defaults")
+
+    def plausibility(self) -> list[Implausible]:
+        # Phase contrast under an LED exposes in milliseconds to tens of milliseconds;
+        # seconds suggest a value typed in microseconds or a lamp that is off (common practice).
+        if self.exposure_ms > PLAUSIBLE_EXPOSURE_MAX_MS:
+            return [Implausible("exposure_ms", (
+                f"{self.exposure_ms:g} ms is allowed but unusual: phase contrast under an LED exposes for "
+                f"at most about {PLAUSIBLE_EXPOSURE_MAX_MS:g} ms (common practice); was it meant in another unit?"
+            ))]
+        return []
+
+
+# Bounds of what is usual, not of what is allowed: beyond them check warns (see plausibility()).
+PLAUSIBLE_EXPOSURE_MAX_MS = 1000.0
+PLAUSIBLE_CAMERA_PIXEL_MAX_UM = 15.0
+PLAUSIBLE_FOCUS_TRAVEL_MAX_UM = 50_000.0
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -58,6 +74,28 @@ class OpticsSection:
         lam_um = self.wavelength_nm / 1000.0
         n, na = self.immersion_index, self.numerical_aperture
         return lam_um * n / na**2 + n * self.camera_pixel_um / (self.magnification * na)
+
+    @property
+    def resolution_um(self) -> float:
+        """Rayleigh's resolution limit r = 0.61 λ/NA, in um (the Rayleigh criterion; from memory)."""
+        return 0.61 * (self.wavelength_nm / 1000.0) / self.numerical_aperture
+
+    def plausibility(self) -> list[Implausible]:
+        out = []
+        # Camera sensors used on microscopes have pixel pitches of about 1 to 15 um (common practice).
+        if self.camera_pixel_um > PLAUSIBLE_CAMERA_PIXEL_MAX_UM:
+            out.append(Implausible("camera_pixel_um", (
+                f"{self.camera_pixel_um:g} um is allowed but unusual: camera sensors have pixels of about 1 to "
+                f"{PLAUSIBLE_CAMERA_PIXEL_MAX_UM:g} um (common practice)"
+            )))
+        # A pixel in the sample plane larger than the smallest resolved detail loses detail the
+        # objective delivers (Nyquist sampling wants at most half of it).
+        if self.pixel_size_um > self.resolution_um:
+            out.append(Implausible("camera_pixel_um", (
+                f"one pixel covers {self.pixel_size_um:.2f} um of the sample at {self.magnification:g}x, more than the "
+                f"objective resolves ({self.resolution_um:.2f} um, Rayleigh 0.61 λ/NA): check the pixel pitch and magnification"
+            )))
+        return out
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
@@ -108,6 +146,17 @@ class FocusSection:
     def __post_init__(self) -> None:
         if self.z_min_um >= self.z_safe_max_um:
             raise ValueError("z_safe_max_um: must be greater than z_min_um")
+
+    def plausibility(self) -> list[Implausible]:
+        # Focus drives on small microscopes travel a few millimetres, at most a few
+        # centimetres (common practice): metres is a value typed in the wrong unit.
+        travel = self.z_safe_max_um - self.z_min_um
+        if travel > PLAUSIBLE_FOCUS_TRAVEL_MAX_UM:
+            return [Implausible("z_safe_max_um", (
+                f"{self.z_safe_max_um:g} um is allowed but unlikely: {travel / 1000:g} mm of focus travel, where focus drives "
+                f"travel at most about {PLAUSIBLE_FOCUS_TRAVEL_MAX_UM / 1000:g} mm (common practice); was it meant in another unit?"
+            ))]
+        return []
 
 
 @dataclasses.dataclass(frozen=True, kw_only=True)

@@ -63,7 +63,7 @@ class Series:
     data: dict[str, Any]
     """emva1288's processed data (Data1288.data), to rerun its results with other settings"""
     set_gain_dn_per_e: float
-    """the gain the simulator really used (it snaps to its own list of gains)"""
+    """the gain the simulator really used (it rounds to its own list of gains)"""
 
 
 @contextlib.contextmanager

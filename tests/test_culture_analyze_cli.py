@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from daemon.cli import main
-from daemon.commands.snap import write_tiff
+from daemon.commands.capture import write_tiff
 from drivers.base import Frame
 from drivers.sim.world import SimWorld
 from tests.helpers import sim_profile

@@ -81,3 +81,20 @@ def test_empty_well_exits_1_and_says_so(tmp_path: Path, capsys: pytest.CaptureFi
     out = json.loads(capsys.readouterr().out)
     assert rc == 1
     assert out["found"] is False and "no focus found" in out["message"]
+
+
+def test_focus_without_a_position_goes_to_the_demo_well_and_says_so(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The simulated stage homes off the plate; like capture, focus goes to the demo well.
+    profile = small_profile(tmp_path)
+    rc = main(["focus", "--profile", str(profile), "--sim-speed", "200", "--data", str(tmp_path / "data")])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert text.splitlines()[0] == "moved to well B3 (the demo well: no position given)"
+    assert "focus found" in text
+    # With a position given nothing is said about the demo well.
+    rc = main(["focus", "--profile", str(profile), "--sim-speed", "200", "--well", "C4", "--json"])
+    captured = capsys.readouterr()
+    assert rc == 0 and "demo well" not in captured.out + captured.err
+    json.loads(captured.out)

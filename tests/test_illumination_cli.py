@@ -12,7 +12,7 @@ import pytest
 import tifffile
 
 from daemon.cli import main
-from daemon.commands.snap import write_tiff
+from daemon.commands.capture import write_tiff
 from daemon.profile import PROFILE_DIR
 from tests.helpers import sim_scope
 

@@ -112,7 +112,7 @@ def test_the_registry_tables_name_driver_modules_only() -> None:
         ("from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from daemon.scope import Scope\n", "drivers.x", "daemon.scope"),
         ("import importlib\nm = importlib.import_module('daemon.hardware')\n", "drivers.x", "daemon.hardware"),
         ("m = __import__('daemon')\n", "drivers.x", "daemon"),
-        ("from .. import sim\n", "daemon.commands.snap", "daemon.sim"),
+        ("from .. import sim\n", "daemon.commands.capture", "daemon.sim"),
         ("from ..sim.world import SimWorld\n", "drivers.sim.camera", "drivers.sim.world"),
         ("from drivers import sim\n", "daemon.scope", "drivers.sim"),
     ],

@@ -21,7 +21,7 @@ from daemon.storage.index import INDEX_FILE, open_index
 from tests.test_index_rebuild import N_FRAMES, _folder_with_frames
 
 
-def _snapshot(folder: Path) -> dict[str, tuple[int, int, int]]:
+def _listing(folder: Path) -> dict[str, tuple[int, int, int]]:
     return {
         p.relative_to(folder).as_posix(): (p.stat().st_size, p.stat().st_mtime_ns, stat.S_IMODE(p.stat().st_mode))
         for p in folder.rglob("*")
@@ -62,7 +62,7 @@ def test_list_show_and_export_work_on_a_read_only_folder(
         # as in a read-only folder even for root.
         (data / f"{INDEX_FILE}-shm").mkdir()
     _read_only(monkeypatch, data)
-    before = _snapshot(data)
+    before = _listing(data)
 
     assert main(["timelapse", "list", "--data", str(data), "--json"]) == 0
     (row,) = json.loads(capsys.readouterr().out)
@@ -82,7 +82,7 @@ def test_list_show_and_export_work_on_a_read_only_folder(
     assert len(rows) == N_FRAMES and {r["status"] for r in rows} == {"ok"}
     assert sorted(p.name for p in out_dir.glob("*.ome.tif")) == ["B3-1_raw.ome.tif", "B3-2_raw.ome.tif"]
 
-    assert _snapshot(data) == before, "reading a read-only folder changed it"
+    assert _listing(data) == before, "reading a read-only folder changed it"
 
 
 def test_read_only_index_refuses_writes_and_requests_say_so(

@@ -1,19 +1,32 @@
-"""``phasewatch check PROFILE [--probe]``: validate a profile, optionally open the hardware."""
+"""``phasewatch check PROFILE [--probe]``: validate a profile, optionally open the hardware.
+
+Every problem in the profile is listed in one run (one line each, naming file, section and
+option; exit status 2), so a profile is fixed in one edit rather than one run per mistake.
+Values that are allowed but implausible are warned about and do not fail the check.
+"""
 
 from __future__ import annotations
 
 import argparse
 import dataclasses
+import sys
 
 import numpy as np
 
 from daemon.commands.common import print_json
 from daemon.hardware import build_scope
-from daemon.profile import Profile, load_profile
+from daemon.profile import Profile, load_profile, profile_warnings
+from drivers.options import ConfigError, flatten
+
+EXIT_PROBLEMS = 2
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("check", help="validate a scope profile; --probe also opens the hardware")
+    p = sub.add_parser(
+        "check", help="validate a scope profile; --probe also opens the hardware",
+        description="List every problem in a scope profile, and warn about values that are allowed but unlikely.",
+        epilog="Exit status: 0 valid (perhaps with warnings), 2 problems found (all of them are listed).",
+    )
     p.add_argument("profile", help="profile path or name in hw_profiles/")
     p.add_argument("--probe", action="store_true", help="open camera and controller and report what was found")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
@@ -87,8 +100,21 @@ def _controller_found(controller: dict[str, object]) -> dict[str, object]:
 
 
 async def run(args: argparse.Namespace) -> int:
-    profile = load_profile(args.profile)
-    report: dict[str, object] = {"valid": True, **summary(profile)}
+    try:
+        profile = load_profile(args.profile)
+    except ConfigError as exc:
+        problems = [str(p) for p in flatten([exc])]
+        if args.json:
+            print_json({"valid": False, "problems": problems})
+        elif len(problems) == 1:
+            print(f"phasewatch: {problems[0]}", file=sys.stderr)
+        else:
+            print(f"phasewatch: {len(problems)} problems in the profile:", file=sys.stderr)
+            for line in problems:
+                print(f"  {line}", file=sys.stderr)
+        return EXIT_PROBLEMS
+    warnings = profile_warnings(profile)
+    report: dict[str, object] = {"valid": True, **summary(profile), "warnings": warnings}
     if args.probe:
         report["probe"] = await probe(profile)
     if args.json:
@@ -96,9 +122,11 @@ async def run(args: argparse.Namespace) -> int:
         return 0
     print(f"{profile.path}: valid")
     for key, value in report.items():
-        if key in ("valid", "probe"):
+        if key in ("valid", "probe", "warnings"):
             continue
         print(f"  {key}: {value}")
+    for warning in warnings:
+        print(f"  warning: {warning}")
     if args.probe:
         found = report["probe"]
         print("  probe:")

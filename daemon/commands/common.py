@@ -144,6 +144,24 @@ def add_position_options(parser: argparse.ArgumentParser, *, verb: str, z: bool 
         )
 
 
+DEMO_WELL = "B3"
+"""The simulated plate's well with cells that a command goes to when given no position."""
+
+
+def use_demo_well(profile: Profile, args: argparse.Namespace) -> str | None:
+    """On the simulated scope with no position given, aim at :data:`DEMO_WELL` and return the
+    line that says so; None (and no change) otherwise.
+
+    After homing, the simulated stage sits off the plate, where there is nothing to focus on
+    or to see: every command that works at one position goes to the same well and says it
+    did, rather than failing in one command and moving silently in another. A real scope
+    stays where it is: it is never moved without being asked."""
+    if not profile.is_simulated or any(getattr(args, n, None) is not None for n in POSITION_FIELDS):
+        return None
+    args.well = DEMO_WELL
+    return f"moved to well {DEMO_WELL} (the demo well: no position given)"
+
+
 def move_from_args(profile: Profile, args: argparse.Namespace, fields: Sequence[str] = POSITION_FIELDS) -> MoveTarget | None:
     """The move the position options ask for, its well resolved through the stage map; None
     to stay. Refused as the web API refuses it (BadRequest naming the option)."""

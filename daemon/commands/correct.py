@@ -25,7 +25,7 @@ from daemon.commands.common import (
     request_from_args,
     truth_beside,
 )
-from daemon.commands.snap import write_tiff
+from daemon.commands.capture import write_tiff
 from daemon.hardware import build_scope
 from daemon.illumination import CalibrationError
 from daemon.illumination.calibration import CalibrationStore
@@ -85,7 +85,7 @@ async def _capture(args: argparse.Namespace, profile: Profile, store: Calibratio
     args.data.mkdir(parents=True, exist_ok=True)
     target = move_from_args(profile, args, ("x_um", "y_um", "z_um"))
     scope = build_scope(profile, sim_speed=args.sim_speed, data_dir=args.data)
-    async with scope, scope.claim("corrected snapshot"):
+    async with scope, scope.claim("corrected capture"):
         if target is not None:
             await apply_move(scope, target)
         pos = await scope.position()

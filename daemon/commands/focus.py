@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import math
+import sys
 
 from daemon.commands.common import (
     add_position_options,
@@ -13,6 +14,7 @@ from daemon.commands.common import (
     print_json,
     request_from_args,
     truth_beside,
+    use_demo_well,
 )
 from daemon.focus.autofocus import AutofocusRequest, FocusPoint, FocusResult, autofocus_as_asked
 from daemon.hardware import build_scope
@@ -45,11 +47,15 @@ async def run(args: argparse.Namespace) -> int:
     profile = load_profile(args.profile)
     request = request_from_args(AutofocusRequest, args)
     request.check(profile)  # refused before the hardware is opened
+    demo = use_demo_well(profile, args)
     target = move_from_args(profile, args)
     scope = build_scope(profile, sim_speed=args.sim_speed)
     async with scope, scope.claim("autofocus (command line)"):
         if target is not None:
             await apply_move(scope, target)
+            if demo:
+                # Beside JSON on stdout the note goes to stderr, so the JSON stays parseable.
+                print(demo, file=sys.stderr if args.json else sys.stdout)
         result = await autofocus_as_asked(scope, request)
         if scope.truth.known and not result.found:
             here = await scope.position()

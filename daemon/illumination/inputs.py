@@ -28,7 +28,7 @@ class InputFrame:
 
 
 def _plain_ome(xml: str) -> dict[str, float]:
-    """Exposure, position and pixel size from any OME-XML (e.g. what ``snap`` writes)."""
+    """Exposure, position and pixel size from any OME-XML (e.g. what ``capture`` writes)."""
     out: dict[str, float] = {}
     try:
         root = ET.fromstring(xml)

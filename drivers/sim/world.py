@@ -176,7 +176,7 @@ class SimWorld:
 
         Rasterising on one lattice and moving the image by the remainder (:meth:`render_intensity`)
         keeps a frame an exact translate of its neighbours: the rasterised outlines and spots
-        snap to pixels, which would otherwise shift the content by up to half a pixel."""
+        round to whole pixels, which would otherwise shift the content by up to half a pixel."""
         ny, nx = self.grid_shape
         fx = (x_um - (nx - 1) / 2.0 * self.pixel_um) / self.pixel_um
         fy = (y_um - (ny - 1) / 2.0 * self.pixel_um) / self.pixel_um

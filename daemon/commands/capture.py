@@ -1,4 +1,4 @@
-"""``phasewatch snap``: capture one frame and save it as a lossless (OME-)TIFF."""
+"""``phasewatch capture``: capture one frame and save it as a lossless (OME-)TIFF."""
 
 from __future__ import annotations
 
@@ -18,6 +18,7 @@ from daemon.commands.common import (
     move_from_args,
     request_from_args,
     truth_beside,
+    use_demo_well,
 )
 from daemon.hardware import build_scope
 from daemon.manual import CaptureRequest, apply_move, capture
@@ -27,11 +28,8 @@ from drivers import atomic
 from drivers.base import Frame
 
 
-DEMO_WELL = "B3"
-
-
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("snap", help="capture one frame and save it as a lossless TIFF")
+    p = sub.add_parser("capture", help="capture one frame and save it as a lossless TIFF")
     add_profile_options(p)
     p.add_argument("--output", "-o", type=Path, required=True, help="file to write (.tif)")
     add_position_options(p, verb="take the frame", z=True)
@@ -72,14 +70,14 @@ async def run(args: argparse.Namespace) -> int:
         print(f"phasewatch: --output {args.output}: folder {args.output.parent} does not exist", file=sys.stderr)
         return 2
     settings = request_from_args(CaptureRequest, args)
-    if profile.is_simulated and args.well is None and args.x_um is None and args.y_um is None:
-        # After homing the simulated stage sits off the plate: show a well with cells instead.
-        args.well = DEMO_WELL
+    demo = use_demo_well(profile, args)
     target = move_from_args(profile, args, POSITION_FIELDS + ("z_um",))
     scope = build_scope(profile, sim_speed=args.sim_speed)
-    async with scope, scope.claim("snap (command line)"):
+    async with scope, scope.claim("capture (command line)"):
         if target is not None:
             await apply_move(scope, target)
+            if demo:
+                print(demo)
         if args.autofocus or (profile.is_simulated and args.z_um is None):
             from daemon.focus.autofocus import autofocus
 
