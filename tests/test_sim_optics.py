@@ -216,3 +216,17 @@ def test_sources_sample_annulus_and_led_band() -> None:
     assert abs(np.mean(lams) - LAMBDA_UM) < 1e-3 and max(lams) - min(lams) > 0.015
     on_axis = dataclasses.replace(OPTICS, annulus_fraction=0.0).sources()
     assert len(on_axis) == 1 and on_axis[0].fx == 0.0 and on_axis[0].wavelength_um == LAMBDA_UM
+
+
+@pytest.mark.parametrize("keep", [0, 1, 3])
+def test_defocus_cache_of_any_size_gives_the_same_image(keep: int) -> None:
+    # keep_defocus = 0 turns the transfer cache off; it must still image (once raised KeyError).
+    shape = (96, 128)
+    field = np.exp(1j * smooth_phase(shape, max_cpum=0.6, rms_rad=0.8, seed=11)).astype(np.complex64)
+    plain = PhaseContrastImager(shape, DX_UM, OPTICS, keep_defocus=3)
+    imager = PhaseContrastImager(shape, DX_UM, OPTICS, keep_defocus=keep)
+    spectrum = imager.spectrum(field)
+    for dz in (0.0, 7.5, 0.0, -20.0, 7.5):
+        assert np.array_equal(imager.image(spectrum, dz), plain.image(spectrum, dz))
+    with pytest.raises(ValueError, match="keep_defocus"):
+        PhaseContrastImager(shape, DX_UM, OPTICS, keep_defocus=-1)

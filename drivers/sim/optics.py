@@ -269,6 +269,8 @@ class PhaseContrastImager:
     """
 
     def __init__(self, shape: tuple[int, int], dx_um: float, optics: PhaseContrastOptics, *, keep_defocus: int = 3) -> None:
+        if keep_defocus < 0:
+            raise ValueError(f"keep_defocus must be >= 0 (0 = no cache), got {keep_defocus}")
         self.shape = shape
         self.dx_um = dx_um
         self.optics = optics
@@ -344,8 +346,8 @@ class PhaseContrastImager:
         if hit is not None:
             self._defocus.move_to_end(key)
             return hit
-        # Make room first, so old and new transfers are never held together.
-        while len(self._defocus) >= self._keep_defocus:
+        # Make room first, so old and new transfers are never held together (keep_defocus = 0: no cache).
+        while self._defocus and len(self._defocus) >= self._keep_defocus:
             self._defocus.popitem(last=False)
         two_pi_dz = np.float32(2.0 * np.pi * key * DZ_BUCKET_UM)
         transfers = []
