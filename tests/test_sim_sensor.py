@@ -175,3 +175,37 @@ def test_deeper_bit_depths_use_uint16_and_their_full_scale() -> None:
             # Full well 12000 e- * 0.3 DN/e- + 8 DN offset; DSNU still varies the clipped pixels a little.
             assert truth["saturation_dn"] == 3608
             assert abs(float(np.median(over)) - 3608) <= 1 and over.max() < 3620
+
+
+def test_temporal_noise_at_full_well_keeps_the_read_noise() -> None:
+    # EMVA 1288 R4.0 linear model: dark noise is added in the readout, after the pixel's charge;
+    # once the well is full the shot noise is gone and sigma_y^2 = K^2 * sigma_read^2 + 1/12 DN^2
+    # remains. A 12-bit camera at 24 dB: K * full well + offset = 4004 DN < 4095, so the ADC
+    # does not clip first.
+    cfg = SimSensor()
+    sensor = Sensor(cfg, (240, 320), 12, seed=3)
+    k = sensor.system_gain(24.0)
+    assert k * cfg.full_well_e + cfg.dark_offset_dn < 4095
+    photons = np.full((240, 320), 10.0 * cfg.full_well_e / cfg.quantum_efficiency, np.float32)
+    a, b = (sensor.expose(photons, exposure_ms=10.0, gain_db=24.0, rng=np.random.default_rng(s)).astype(np.float64) for s in (1, 2))
+    var = float(np.var(a - b) / 2.0)
+    expected = k**2 * cfg.read_noise_e**2 + 1.0 / 12.0
+    assert var == pytest.approx(expected, rel=0.05)
+    # The mean sits at the full well (DSNU averages out over the frame).
+    assert float((a.mean() + b.mean()) / 2.0) == pytest.approx(k * cfg.full_well_e + cfg.dark_offset_dn, abs=0.5)
+    # Just below the well the photon transfer still holds: sigma_y^2 = K^2 sigma_d^2 + sigma_q^2 + K (mu_y - mu_dark).
+    half = np.full((240, 320), 0.5 * cfg.full_well_e / cfg.quantum_efficiency, np.float32)
+    c, d = (sensor.expose(half, exposure_ms=10.0, gain_db=24.0, rng=np.random.default_rng(s)).astype(np.float64) for s in (3, 4))
+    dark_e = cfg.dark_current_e_per_s * 0.01
+    signal_e = 0.5 * cfg.full_well_e + dark_e
+    assert float(np.var(c - d) / 2.0) == pytest.approx(k**2 * (cfg.read_noise_e**2 + signal_e) + 1.0 / 12.0, rel=0.05)
+
+
+def test_temporal_noise_vanishes_only_where_the_adc_clips_first() -> None:
+    # EMVA 1288 R4.0: where the digital range ends below the full well the output sticks at
+    # 2^bits - 1 and has no temporal noise (the default 8-bit profile at 0 dB: 0.021 * 12000 + 8 > 255).
+    cfg = SimSensor()
+    sensor = Sensor(cfg, (120, 160), 8, seed=3)
+    photons = np.full((120, 160), 10.0 * cfg.full_well_e / cfg.quantum_efficiency, np.float32)
+    a = sensor.expose(photons, exposure_ms=10.0, gain_db=0.0, rng=np.random.default_rng(5))
+    assert np.all(a == 255)

@@ -1,17 +1,21 @@
 """The simulated image sensor: the linear camera model of EMVA Standard 1288 (Release 4.0).
 
-Per pixel, with mu_p mean photons in the exposure:
+Per pixel, with mu_p mean photons in the exposure, in the order the signal meets them:
 
     electrons   e  = Poisson(QE * mu_p * (1 + PRNU_pattern) + dark_current * t_exp)
                      (Gaussian with variance = mean above 20 e-, where the two agree)
-    full well   e  = min(e, full_well)
-    readout     e += read_noise * N(0, 1) + DSNU_pattern
+    full well   e  = min(e, full_well)                 (the pixel's charge saturates)
+    readout     e += read_noise * N(0, 1) + DSNU_pattern   (after the well: read noise is
+                     added by the readout chain, so it stays when the pixel is full)
     digital     y  = clip(round(K * e + dark_offset), 0, 2^bits - 1),  K = K0 * 10^(gain_dB / 20)
 
 so mean and temporal variance follow EMVA 1288's mu_y = mu_y.dark + K * eta * mu_p and
-sigma_y^2 = K^2 * sigma_d^2 + sigma_q^2 + K * (mu_y - mu_y.dark), sigma_q^2 = 1/12 DN^2.
-Read noise is input-referred (electrons) and the black level is added after the gain.
-The fixed patterns (PRNU, DSNU) are white and deterministic from the seed.
+sigma_y^2 = K^2 * sigma_d^2 + sigma_q^2 + K * (mu_y - mu_y.dark), sigma_q^2 = 1/12 DN^2, below
+saturation. At full-well saturation the shot noise is gone and sigma_y^2 = K^2 * sigma_read^2 +
+sigma_q^2 remains (the readout's own noise); only where the ADC clips first (K * full_well +
+dark_offset > 2^bits - 1) does the temporal noise vanish. Read noise is input-referred
+(electrons) and the black level is added after the gain. The fixed patterns (PRNU, DSNU) are
+white and deterministic from the seed.
 """
 
 from __future__ import annotations
@@ -77,16 +81,24 @@ class Sensor:
         mean_e = photons * self._qe_prnu
         mean_e += np.float32(c.dark_current_e_per_s * exposure_ms / 1000.0)
         noise = rng.standard_normal(self.shape, dtype=np.float32)
-        # Shot and read noise in one Gaussian where Poisson is near-Gaussian (variance adds).
-        e = mean_e + np.float32(c.read_noise_e**2)
+        # Shot and read noise in one Gaussian where Poisson is near-Gaussian (variances add), which
+        # is exact wherever the well cannot fill; read noise comes after the well, so pixels that
+        # may reach it (within 6 sigma of shot noise) are drawn in order below.
+        read = np.float32(c.read_noise_e)
+        e = mean_e + read * read
         np.sqrt(e, out=e)
         e *= noise
         e += mean_e
+        full = np.float32(c.full_well_e)
+        near_full = mean_e > full - 6.0 * np.sqrt(full)
+        if near_full.any():
+            m = mean_e[near_full]
+            shot = m + np.sqrt(m) * noise[near_full]
+            e[near_full] = np.minimum(shot, full) + read * rng.standard_normal(m.shape, dtype=np.float32)
         dim = mean_e < POISSON_BELOW_E
         if dim.any():
-            e[dim] = rng.poisson(mean_e[dim]).astype(np.float32) + np.float32(c.read_noise_e) * noise[dim]
+            e[dim] = np.minimum(rng.poisson(mean_e[dim]).astype(np.float32), full) + read * noise[dim]
         del noise, mean_e
-        np.minimum(e, np.float32(c.full_well_e), out=e)
         e += self.dsnu_pattern_e
         dn = e  # electrons -> DN in place
         dn *= np.float32(self.system_gain(gain_db))
