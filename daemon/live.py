@@ -28,6 +28,7 @@ from typing import TYPE_CHECKING
 import cv2
 import numpy as np
 
+from daemon.profile import DEFAULT_MAX_VIEWERS, DEFAULT_STALL_S
 from drivers.base import Frame, HardwareError
 from drivers.clock import untimed
 from drivers.options import option
@@ -47,11 +48,6 @@ MAX_WIDTH_PX = 8192
 RETRY_FIRST_S, RETRY_MAX_S = 0.5, 8.0
 # A viewer waits this long for the next frame before looking again (and noticing a close).
 NEXT_FRAME_WAIT_S = 5.0
-# A few browsers on the lab network and a wall screen; each stream costs one JPEG per
-# frame to send and its buffers, never a capture of its own.
-DEFAULT_MAX_VIEWERS = 8
-# A viewer whose frames have not been taken off the wire for this long is gone.
-DEFAULT_STALL_S = 10.0
 
 
 class LiveViewFull(Exception):

@@ -20,7 +20,6 @@ import tomllib
 from pathlib import Path
 from typing import Any, Literal
 
-from daemon.live import DEFAULT_MAX_VIEWERS, DEFAULT_STALL_S
 from drivers.options import (
     ConfigError,
     load_section,
@@ -43,6 +42,12 @@ from drivers.sections import CameraSection, FocusSection, IlluminationSection, O
 
 PROFILE_DIR = Path(__file__).resolve().parent.parent / "hw_profiles"
 
+
+# A few browsers on the lab network and a wall screen; each stream costs one JPEG per
+# frame to send and its buffers, never a capture of its own.
+DEFAULT_MAX_VIEWERS = 8
+# A viewer whose frames have not been taken off the wire for this long is gone.
+DEFAULT_STALL_S = 10.0
 
 @dataclasses.dataclass(frozen=True, kw_only=True)
 class ScopeSection:
