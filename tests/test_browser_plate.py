@@ -179,7 +179,7 @@ async def test_map_plan_with_conditions_viewer_and_movie(tmp_path):
         await page.evaluate("""(() => { const s = document.getElementById('viewer-scrub');
           s.value = 0; s.dispatchEvent(new Event('input')); })()""")
         await page.wait_for("document.getElementById('viewer-img').dataset.tp === '0' && document.getElementById('viewer-img').complete")
-        assert await page.evaluate("document.getElementById('viewer-pos').textContent") == "time point 0 · 1 of 3"
+        assert await page.evaluate("document.getElementById('viewer-pos').textContent") == "time point 1 · 1 of 3"
         bar_um = float(await page.wait_for("document.getElementById('viewer-bar').dataset.um"))
         bar_px = await page.evaluate("document.getElementById('viewer-bar-line').getBoundingClientRect().width")
         img_px = await page.evaluate("document.getElementById('viewer-img').clientWidth")

@@ -373,7 +373,7 @@ function renderTimelapse() {
   const pr = d.progress;
   if (running && pr) {
     $("tl-now").textContent = d.state === "paused" ? "paused" :
-      (pr.acquiring ? `imaging time point ${pr.time_point}, position ${(pr.position_index ?? 0) + 1} of ${pr.positions} (${pr.position})` : "waiting for the next time point");
+      (pr.acquiring ? `imaging time point ${(pr.time_point ?? 0) + 1}, position ${(pr.position_index ?? 0) + 1} of ${pr.positions} (${pr.position})` : "waiting for the next time point");
     $("tl-next").textContent = pr.next_time_point_s ? `${clock(pr.next_time_point_s)} (in ${ago(pr.next_time_point_s - d.clock_s)})` : "last one";
   } else {
     $("tl-now").textContent = d.state + (d.stop_reason ? ` (${d.stop_reason})` : "");
@@ -871,7 +871,7 @@ function showFrame(i) {
   img.dataset.frame = String(f.id);
   img.dataset.tp = String(f.tp);
   $("viewer-scrub").value = String(vw.index);
-  $("viewer-pos").textContent = `time point ${f.tp} · ${vw.index + 1} of ${vw.frames.length}`;
+  $("viewer-pos").textContent = `time point ${f.tp + 1} · ${vw.index + 1} of ${vw.frames.length}`;
   $("viewer-time").textContent = `${ago(f.t_s - d.t0_s)} after the start · ${clock(f.t_s)}`;
   $("viewer-tiff").href = `${API}/timelapses/${d.id}/frames/${f.id}`;
   drawScaleBar();
@@ -957,7 +957,7 @@ function renderWells(latest) {
     cap.append(el("strong", {}, pos.key));
     if (conds[pos.well]) cap.append(el("span", { class: "cond-tag" }, conds[pos.well]));
     cap.append(el("span", { class: "conf" }, pos.confluence === null ? "confluence —" : `${(100 * pos.confluence).toFixed(0)} % covered`));
-    cap.append(el("span", { class: "hint" }, `time point ${pos.tp} · ${pos.focus_found === 0 ? "focus not found" : "in focus"}`));
+    cap.append(el("span", { class: "hint" }, `time point ${pos.tp + 1} · ${pos.focus_found === 0 ? "focus not found" : "in focus"}`));
     const spark = document.createElementNS("http://www.w3.org/2000/svg", "svg");
     spark.setAttribute("class", "spark-svg");
     spark.setAttribute("aria-label", `confluence of ${pos.key} over time`);
@@ -1063,7 +1063,7 @@ function renderVerdict() {
     const recent = ui.alerts.filter((a) => a.timelapse_id === d.id && a.level !== "info");
     for (const a of recent.slice(-4)) issues.push({ level: a.level === "error" ? "bad" : "warn", text: a.message });
     for (const pos of d.latest || []) {
-      if (pos.focus_found === 0) issues.push({ level: "warn", text: `${pos.key}: focus not found at time point ${pos.tp}` });
+      if (pos.focus_found === 0) issues.push({ level: "warn", text: `${pos.key}: focus not found at time point ${pos.tp + 1}` });
     }
     const passage = ui.alerts.filter((a) => a.timelapse_id === d.id && a.kind === "confluence_reached");
     for (const a of passage.slice(-3)) issues.push({ level: "info", text: a.message });
