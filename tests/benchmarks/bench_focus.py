@@ -21,6 +21,7 @@ import dataclasses
 import os
 import statistics
 import time
+from typing import Any
 from collections.abc import Callable
 
 import numpy as np
@@ -86,6 +87,20 @@ class Trial:
     frames: int
     error_um: float
     elapsed_s: float
+
+
+async def _naive_sweep(scope: Any, plan: Any, metric: Any, centre_um: float, half_range_um: float) -> tuple[float, int]:
+    """The naive reference: a frame every quarter depth of field over centre ± half range,
+    then the best plane; returns it and the frames taken."""
+    best_z, best_score, frames = centre_um, -1.0, 0
+    for z in np.arange(centre_um - half_range_um, centre_um + half_range_um + 1e-6, plan.dof_um / 4):
+        frame = await scope.capture_at(float(z))
+        frames += 1
+        score = (await asyncio.to_thread(score_frame, frame.pixels, metric, None, plan, 255.0))[0]
+        if score > best_score:
+            best_z, best_score = float(z), score
+    await scope.move_to(z_um=best_z)
+    return best_z, frames
 
 
 async def _field_with_cells(scope: Scope, rng: np.random.Generator, wells: list[str]) -> tuple[float, float]:
@@ -171,14 +186,7 @@ async def _naive_trials(profile: Profile) -> list[Trial]:
         for _ in range(NAIVE_TRIALS):
             start = await _start_trial(scope, rng, _wells(profile))
             t0 = scope.clock.now()
-            best_z, best_score, frames = start, -1.0, 0
-            for z in np.arange(start - START_ERROR_UM, start + START_ERROR_UM + 1e-6, plan.dof_um / 4):
-                frame = await scope.capture_at(float(z))
-                frames += 1
-                score = (await asyncio.to_thread(score_frame, frame.pixels, metric, None, plan, 255.0))[0]
-                if score > best_score:
-                    best_z, best_score = float(z), score
-            await scope.move_to(z_um=best_z)
+            best_z, frames = await _naive_sweep(scope, plan, metric, start, START_ERROR_UM)
             t_true = scope.true_focus_z_um()
             assert t_true is not None
             trials.append(Trial(True, frames, best_z - t_true, scope.clock.now() - t0))
@@ -251,14 +259,7 @@ async def _naive_tracking(profile: Profile) -> list[Visit]:
                     last[i] = (truth, truth)  # the first visit is not what is compared
                     continue
                 centre = last[i][1]
-                best_z, best_score, frames = centre, -1.0, 0
-                for z in np.arange(centre - TRACK_DRIFT_UM, centre + TRACK_DRIFT_UM + 1e-6, plan.dof_um / 4):
-                    frame = await scope.capture_at(float(z))
-                    frames += 1
-                    score = (await asyncio.to_thread(score_frame, frame.pixels, metric, None, plan, 255.0))[0]
-                    if score > best_score:
-                        best_z, best_score = float(z), score
-                await scope.move_to(z_um=best_z)
+                best_z, frames = await _naive_sweep(scope, plan, metric, centre, TRACK_DRIFT_UM)
                 now_true = scope.true_focus_z_um()
                 assert now_true is not None
                 visits.append(Visit(tp, True, frames, best_z - now_true, truth - last[i][0], float("nan")))
